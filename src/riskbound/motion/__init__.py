@@ -1,0 +1,1 @@
+"""Robot and obstacle motion models, their Jacobians and covariance propagation."""

@@ -1,0 +1,1 @@
+"""Chance-constrained MPC: build once, solve each control cycle."""

@@ -1,0 +1,287 @@
+"""Chance-constrained MPC: built once with CasADi, solved with IPOPT every control cycle.
+
+Decision vector, step by step: w = [x₀, u₀, x₁, u₁, …, x_{N−1}, u_{N−1}, x_N].
+
+    minimise   Σ_{k<N} [ w_g ‖p_k − r‖² + w_s ‖v_k‖² + w_a a_k² (+ w_ω ω_k²) ] + w_T ‖p_N − r‖² + w_s ‖v_N‖²
+    subject to x₀ = current state,  x_{k+1} = f(x_k, u_k),  speed/acceleration/turn limits,
+               (p_k − o_jk)ᵀ A_jk (p_k − o_jk) ≥ 1   for k = 1…N and every obstacle slot j
+
+r is the goal clipped to the robot's reach. Obstacle centres o_jk and shape matrices A_jk (which
+carry the risk-dependent inflation), the reference and the weights are solver parameters, so a new
+risk level or new weights need no rebuild; horizon, step, model, slot count and solver caps do.
+"""
+
+import time
+from dataclasses import dataclass, field
+
+import casadi as ca
+import numpy as np
+
+from riskbound.motion.covariance import propagate_along_trajectory
+from riskbound.motion.robot_models import make_robot_model
+from riskbound.planning.obstacle_constraints import build_obstacle_constraints
+
+# IPOPT return statuses whose iterate we may use if it is also feasible.
+_CONVERGED = {"Solve_Succeeded", "Solved_To_Acceptable_Level"}
+_CAPPED = {"Maximum_Iterations_Exceeded", "Maximum_WallTime_Exceeded", "Maximum_CpuTime_Exceeded"}
+# Speed limit of the double integrator: the regular octagon inscribed in the disc ‖v‖ ≤ v_max,
+# written as |nᵢ·v| ≤ v_max cos(π/8) for four face normals. Linear rows keep the KKT system free of
+# the curvature that a quadratic ‖v‖² ≤ v_max² row adds; the inscribed octagon never exceeds v_max.
+SPEED_FACE_NORMALS = np.array([[np.cos(a), np.sin(a)] for a in np.arange(4) * np.pi / 4])
+SPEED_FACE_FACTOR = np.cos(np.pi / 8)
+# Largest constraint violation accepted in a returned plan (IPOPT's default constr_viol_tol).
+FEASIBILITY_TOLERANCE = 1e-4
+
+
+@dataclass
+class PlanResult:
+    """One planning cycle: the plan (when usable) and what happened."""
+
+    success: bool
+    status: str
+    solver_status: str = ""
+    solve_ms: float = 0.0
+    iterations: int = 0
+    cost: float = float("nan")
+    obstacles_considered: int = 0
+    obstacles_dropped: int = 0
+    risk_per_constraint: float = float("nan")
+    min_margin_m: float = float("inf")
+    times: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    states: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    inputs: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    constraints: object = None
+
+
+class ChanceConstrainedMPC:
+    """Build the problem once for a settings set; call `solve` every cycle."""
+
+    def __init__(self, settings):
+        self.settings = settings
+        self.model = make_robot_model(settings.robot_model)
+        self._build()
+        self._previous = None
+
+    def _build(self):
+        s, model = self.settings, self.model
+        N, M, n, m, dt = s.horizon_steps, s.max_obstacles, model.state_dim, model.input_dim, s.step_s
+        X = [ca.SX.sym(f"x{k}", n) for k in range(N + 1)]
+        U = [ca.SX.sym(f"u{k}", m) for k in range(N)]
+        reference = ca.SX.sym("reference", 2)
+        weights = ca.SX.sym("weights", 5)  # goal, terminal, speed, accel, turn
+        obstacle = ca.SX.sym("obstacle", 5, M * N)  # per (step, slot): o_x, o_y, A₁₁, A₁₂, A₂₂
+        w_goal, w_terminal, w_speed, w_accel, w_turn = (weights[i] for i in range(5))
+        unicycle = model.name == "unicycle"
+
+        def speed_sq(x):
+            return x[3] ** 2 if unicycle else ca.sumsqr(x[2:4])
+
+        def input_cost(u):
+            return w_accel * u[0] ** 2 + w_turn * u[1] ** 2 if unicycle else w_accel * ca.sumsqr(u)
+
+        cost = 0
+        g = []
+        for k in range(N):
+            cost += w_goal * ca.sumsqr(X[k][0:2] - reference) + w_speed * speed_sq(X[k]) + input_cost(U[k])
+            g.append(X[k + 1] - model.discrete_step(X[k], U[k], dt))
+            if not unicycle:
+                g.append(ca.mtimes(SPEED_FACE_NORMALS, X[k + 1][2:4]))
+            for j in range(M):
+                col = obstacle[:, k * M + j]
+                d = X[k + 1][0:2] - col[0:2]
+                g.append(col[2] * d[0] ** 2 + 2 * col[3] * d[0] * d[1] + col[4] * d[1] ** 2)
+        cost += w_terminal * ca.sumsqr(X[N][0:2] - reference) + w_speed * speed_sq(X[N])
+
+        w = ca.vertcat(*[ca.vertcat(X[k], U[k]) for k in range(N)], X[N])
+        p = ca.vertcat(reference, weights, ca.vec(obstacle))
+        g = ca.vertcat(*g)
+        common = {
+            "print_time": False,
+            "ipopt.print_level": 0,
+            "ipopt.sb": "yes",
+            "ipopt.max_iter": s.solver_max_iter,
+            "ipopt.max_wall_time": s.deadline_s,
+            "ipopt.tol": s.solver_tolerance,
+            "ipopt.acceptable_tol": max(10 * s.solver_tolerance, 1e-6),
+            "ipopt.acceptable_iter": 3,
+            "ipopt.mu_strategy": "monotone",
+        }
+        # From a shifted previous solution the barrier starts small and the iterate is not pushed
+        # away from its bounds, so IPOPT stays near the old optimum: a few iterations per cycle.
+        warm = dict(common, **{
+            "ipopt.warm_start_init_point": "yes",
+            "ipopt.mu_init": 1e-4,
+            "ipopt.warm_start_bound_push": 1e-9,
+            "ipopt.warm_start_slack_bound_push": 1e-9,
+            "ipopt.warm_start_mult_bound_push": 1e-9,
+        })
+        nlp = {"x": w, "f": cost, "g": g, "p": p}
+        self._cold_solver = ca.nlpsol("chance_constrained_mpc_cold", "ipopt", nlp, common)
+        self._warm_solver = ca.nlpsol("chance_constrained_mpc_warm", "ipopt", nlp, warm)
+        self._row = n + (0 if unicycle else len(SPEED_FACE_NORMALS)) + M  # constraint rows per step
+        self._n_w = w.shape[0]
+        self._n_g = g.shape[0]
+
+    # --- bounds and parameters -------------------------------------------------------------------
+
+    def _bounds(self, x0):
+        s, model = self.settings, self.model
+        N, n, m, M = s.horizon_steps, model.state_dim, model.input_dim, s.max_obstacles
+        lbx = np.full((N + 1) * (n + m) - m, -np.inf)
+        ubx = np.full_like(lbx, np.inf)
+        lbx[:n] = ubx[:n] = x0
+        speed_rows = 0 if model.name == "unicycle" else len(SPEED_FACE_NORMALS)
+        face_speed = s.max_speed_mps * SPEED_FACE_FACTOR
+        row_lower = np.concatenate([np.zeros(n), np.full(speed_rows, -face_speed), np.ones(M)])
+        row_upper = np.concatenate([np.zeros(n), np.full(speed_rows, face_speed), np.full(M, np.inf)])
+        steps = np.arange(N)
+        inputs = steps * (n + m) + n  # index of the first input of every step
+        if model.name == "unicycle":
+            lbx[(steps + 1) * (n + m) + 3], ubx[(steps + 1) * (n + m) + 3] = s.min_speed_mps, s.max_speed_mps
+            lbx[inputs], ubx[inputs] = -s.max_accel_mps2, s.max_accel_mps2
+            lbx[inputs + 1], ubx[inputs + 1] = -s.max_turn_rate_radps, s.max_turn_rate_radps
+        else:
+            # Acceleration limit per axis (motor or tilt limits act per axis on most platforms).
+            for axis in range(m):
+                lbx[inputs + axis], ubx[inputs + axis] = -s.max_accel_mps2, s.max_accel_mps2
+        return lbx, ubx, np.tile(row_lower, N), np.tile(row_upper, N)
+
+    def _reference(self, position, goal):
+        s = self.settings
+        reach = s.goal_reach_m if s.goal_reach_m > 0.0 else s.max_speed_mps * s.horizon_steps * s.step_s
+        offset = np.asarray(goal, dtype=float) - position
+        distance = np.linalg.norm(offset)
+        return position + offset * min(1.0, reach / distance) if distance > 0.0 else position.copy()
+
+    # --- warm start ------------------------------------------------------------------------------
+
+    def _unpack(self, w):
+        n, m, N = self.model.state_dim, self.model.input_dim, self.settings.horizon_steps
+        body = np.asarray(w[: N * (n + m)]).reshape(N, n + m)
+        states = np.vstack([body[:, :n], np.asarray(w[N * (n + m):]).reshape(1, n)])
+        return states, body[:, n:]
+
+    @staticmethod
+    def _pack(states, inputs):
+        return np.concatenate([np.hstack([states[:-1], inputs]).ravel(), states[-1]])
+
+    def _initial_guess(self, x0, elapsed_s):
+        """Shifted previous solution (states, inputs, multipliers) or a zero-input rollout."""
+        N, dt = self.settings.horizon_steps, self.settings.step_s
+        if self._previous is None:
+            inputs = np.zeros((N, self.model.input_dim))
+            return self.model.rollout(x0, inputs, dt), inputs, None, None
+        states, inputs, lam_x, lam_g, ids = self._previous
+        shift = int(np.clip(round(elapsed_s / dt), 0, N))
+        idx = np.minimum(np.arange(N + 1) + shift, N)
+        states = states[idx].copy()
+        inputs = inputs[np.minimum(np.arange(N) + shift, N - 1)].copy()
+        states[0] = x0
+        row_idx = np.minimum(np.arange(N) + shift, N - 1)
+        lam_g = lam_g.reshape(N, self._row)[row_idx].ravel()
+        return states, inputs, lam_x, (lam_g, ids)
+
+    def reset(self):
+        """Forget the warm start (after a goal change, a jump in odometry or a failure)."""
+        self._previous = None
+
+    # --- the cycle -------------------------------------------------------------------------------
+
+    def solve(self, x0, P0, goal, forecast, elapsed_s=None):
+        """Plan from state x0 (covariance P0) to `goal` among `forecast` obstacles.
+
+        forecast: ObstacleForecast on the grid t_k = k·Δt, k = 1…N (use `forecast.resampled`)
+        elapsed_s: time since the previous solve (for the warm-start shift); default one step
+        """
+        s, model = self.settings, self.model
+        N, dt, M = s.horizon_steps, s.step_s, s.max_obstacles
+        x0 = np.asarray(x0, dtype=float)
+        goal = np.asarray(goal, dtype=float)
+        reason = None
+        if x0.shape != (model.state_dim,) or not np.all(np.isfinite(x0)):
+            reason = "bad_input: robot state is missing, NaN or Inf"
+        elif not np.all(np.isfinite(P0)):
+            reason = "bad_input: robot covariance is NaN or Inf"
+        elif goal.shape != (2,) or not np.all(np.isfinite(goal)):
+            reason = "bad_input: goal is NaN or Inf"
+        elif len(forecast.times) != N or not np.allclose(forecast.times, dt * np.arange(1, N + 1)):
+            reason = "bad_input: forecast is not on the planner grid"
+        elif forecast.problems():
+            reason = "bad_input: " + "; ".join(forecast.problems())
+        if reason:
+            return PlanResult(False, reason)
+
+        started = time.perf_counter()
+        elapsed_s = dt if elapsed_s is None else elapsed_s
+        guess_states, guess_inputs, lam_x, lam_g_ids = self._initial_guess(x0, elapsed_s)
+        robot_cov = propagate_along_trajectory(model, guess_states, guess_inputs, dt, P0,
+                                               s.robot_accel_noise, s.robot_turn_noise)[1:, 0:2, 0:2]
+        constraints = build_obstacle_constraints(forecast, robot_cov, x0[0:2], s)
+        shapes = constraints.shapes
+        obstacle = np.stack([constraints.centres[..., 0], constraints.centres[..., 1], shapes[..., 0, 0],
+                             shapes[..., 0, 1], shapes[..., 1, 1]], axis=-1)  # (M, N, 5)
+        obstacle = obstacle.transpose(1, 0, 2).reshape(N * M, 5)  # column k·M + j
+        reference = self._reference(x0[0:2], goal)
+        weights = [s.weight_goal, s.weight_terminal, s.weight_speed, s.weight_accel, s.weight_turn]
+        p = np.concatenate([reference, weights, obstacle.ravel()])
+        lbx, ubx, lbg, ubg = self._bounds(x0)
+        args = {"x0": self._pack(guess_states, guess_inputs), "p": p, "lbx": lbx, "ubx": ubx,
+                "lbg": lbg, "ubg": ubg}
+        if lam_x is not None:
+            lam_g, previous_ids = lam_g_ids
+            lam_g = lam_g.reshape(N, self._row).copy()
+            same_obstacle = constraints.track_ids == previous_ids
+            obstacle_cols = lam_g[:, self._row - M:]
+            obstacle_cols[:, ~same_obstacle] = 0.0
+            args["lam_x0"], args["lam_g0"] = lam_x, lam_g.ravel()
+
+        solver = self._cold_solver if lam_x is None else self._warm_solver
+        solution = solver(**args)
+        solve_ms = 1e3 * (time.perf_counter() - started)
+        stats = solver.stats()
+        solver_status = stats.get("return_status", "unknown")
+        w = np.asarray(solution["x"]).ravel()
+        g = np.asarray(solution["g"]).ravel()
+        violation = max(np.max(lbg - g, initial=0.0), np.max(g - ubg, initial=0.0),
+                        np.max(lbx - w, initial=0.0), np.max(w - ubx, initial=0.0))
+        finite = np.all(np.isfinite(w))
+        feasible = finite and violation <= FEASIBILITY_TOLERANCE
+        if solver_status in _CONVERGED and feasible:
+            status = "solved"
+        elif solver_status in _CAPPED and feasible:
+            status = "feasible_not_converged"
+        elif solver_status in _CAPPED:
+            status = "time_or_iteration_cap"
+        elif "Infeasible" in solver_status:
+            status = "infeasible"
+        else:
+            status = "solver_failed"
+        success = status in ("solved", "feasible_not_converged")
+
+        states, inputs = self._unpack(w)
+        result = PlanResult(
+            success=success, status=status, solver_status=solver_status, solve_ms=solve_ms,
+            iterations=int(stats.get("iter_count", 0)), cost=float(solution["f"]),
+            obstacles_considered=constraints.considered, obstacles_dropped=constraints.dropped,
+            risk_per_constraint=constraints.risk,
+            min_margin_m=self._min_margin(states, constraints) if finite else float("nan"),
+            times=dt * np.arange(N + 1), states=states, inputs=inputs, constraints=constraints)
+        if success:
+            self._previous = (states, inputs, np.asarray(solution["lam_x"]).ravel(),
+                              np.asarray(solution["lam_g"]).ravel(), constraints.track_ids.copy())
+        else:
+            self._previous = None
+        return result
+
+    @staticmethod
+    def _min_margin(states, constraints):
+        """Smallest distance [m] from a planned position to an obstacle ellipse, along the ray from its centre.
+
+        Negative inside an ellipse. +inf when no obstacle is considered.
+        """
+        if constraints.considered == 0:
+            return float("inf")
+        n = constraints.considered
+        d = states[None, 1:, 0:2] - constraints.centres[:n]
+        q = np.einsum("jki,jkil,jkl->jk", d, constraints.shapes[:n], d)
+        return float(np.min(np.linalg.norm(d, axis=-1) * (1.0 - 1.0 / np.sqrt(np.maximum(q, 1e-300)))))

@@ -1,0 +1,147 @@
+"""Planner settings: one table of every parameter (type, default, range, meaning) validated in one place.
+
+The planner node turns this table into ROS parameter descriptors; the core validates with it too,
+so a value rejected on the robot is rejected for the same reason in a script.
+
+`rebuild` marks structural settings: changing them rebuilds the optimisation problem (off the
+control path). All other settings enter the problem as numbers at the next solve.
+"""
+
+from dataclasses import dataclass, fields, replace
+
+from riskbound.motion.robot_models import ROBOT_MODELS
+from riskbound.risk.allocation import ALLOCATION_MODES
+
+
+@dataclass(frozen=True)
+class SettingSpec:
+    name: str
+    default: object
+    description: str
+    low: float = None
+    high: float = None
+    low_open: bool = False
+    high_open: bool = False
+    choices: tuple = None
+    rebuild: bool = False
+    read_only: bool = False
+
+    def allowed(self):
+        """Human-readable allowed range, used in every rejection message."""
+        if self.choices is not None:
+            return "one of " + ", ".join(repr(c) for c in self.choices)
+        left = "(" if self.low_open else "["
+        right = ")" if self.high_open else "]"
+        return f"{left}{self.low}, {self.high}{right}"
+
+    def check(self, value):
+        """Return None when `value` is allowed, else the reason it is not."""
+        if self.choices is not None:
+            if value not in self.choices:
+                return f"{self.name}={value!r} is not allowed: must be {self.allowed()}"
+            return None
+        expected = type(self.default)
+        if expected is float and isinstance(value, int) and not isinstance(value, bool):
+            value = float(value)
+        if not isinstance(value, expected) or isinstance(value, bool) != isinstance(self.default, bool):
+            return f"{self.name}={value!r} has the wrong type: expected {expected.__name__}"
+        if isinstance(value, float) and value != value:
+            return f"{self.name}=nan is not allowed: must be in {self.allowed()}"
+        too_low = self.low is not None and (value < self.low or (self.low_open and value == self.low))
+        too_high = self.high is not None and (value > self.high or (self.high_open and value == self.high))
+        if too_low or too_high:
+            return f"{self.name}={value!r} is out of range: must be in {self.allowed()}"
+        return None
+
+
+PLANNER_SPECS = (
+    SettingSpec("risk_level", 0.05, "total collision probability bound α (see risk_allocation)",
+                0.0, 0.5, low_open=True, high_open=True),
+    SettingSpec("risk_allocation", "joint",
+                "joint: α over horizon × obstacles considered, split by Boole's inequality; "
+                "per_constraint: α for each obstacle and step", choices=ALLOCATION_MODES),
+    SettingSpec("horizon_steps", 20, "number of MPC steps", 5, 60, rebuild=True),
+    SettingSpec("step_s", 0.1, "duration of one MPC step [s]", 0.02, 1.0, rebuild=True),
+    SettingSpec("control_rate_hz", 10.0, "planning cycles per second", 1.0, 100.0, rebuild=True),
+    SettingSpec("robot_model", "double_integrator", "robot motion model", choices=ROBOT_MODELS,
+                rebuild=True),
+    SettingSpec("robot_radius_m", 0.3, "radius of the disc enclosing the robot [m]", 0.0, 5.0),
+    SettingSpec("max_speed_mps", 1.2, "speed limit [m/s]", 0.0, 20.0, low_open=True),
+    SettingSpec("min_speed_mps", 0.0, "unicycle only: lowest forward speed, negative allows reversing [m/s]",
+                -5.0, 0.0),
+    SettingSpec("max_accel_mps2", 1.5, "acceleration limit [m/s²]", 0.0, 20.0, low_open=True),
+    SettingSpec("max_turn_rate_radps", 1.5, "unicycle only: turn-rate limit [rad/s]", 0.0, 10.0,
+                low_open=True),
+    SettingSpec("weight_goal", 1.0, "stage cost on squared distance to the goal [1/m²]", 0.0, 1e4),
+    SettingSpec("weight_terminal", 10.0, "terminal cost on squared distance to the goal [1/m²]", 0.0, 1e4),
+    SettingSpec("weight_speed", 0.1, "stage cost on squared speed [s²/m²]", 0.0, 1e4),
+    SettingSpec("weight_accel", 0.1, "stage cost on squared acceleration [s⁴/m²]", 0.0, 1e4),
+    SettingSpec("weight_turn", 0.1, "unicycle only: stage cost on squared turn rate [s²/rad²]", 0.0, 1e4),
+    SettingSpec("goal_reach_m", 0.0,
+                "goal reference is clipped to this distance from the robot (0: speed limit × horizon) [m]",
+                0.0, 1e3),
+    SettingSpec("max_obstacles", 8, "obstacles constrained per cycle after pruning (nearest first)", 1, 64,
+                rebuild=True),
+    SettingSpec("robot_accel_noise", 0.2, "robot process noise: std of acceleration [m/s²]", 0.0, 10.0),
+    SettingSpec("robot_turn_noise", 0.1, "unicycle robot process noise: std of turn rate [rad/s]", 0.0, 10.0),
+    SettingSpec("solver_max_iter", 100, "IPOPT iteration cap", 3, 3000, rebuild=True),
+    SettingSpec("solver_time_fraction", 0.8, "IPOPT wall-time cap as a fraction of the control period",
+                0.05, 1.0, rebuild=True),
+    SettingSpec("solver_tolerance", 1e-4, "IPOPT convergence tolerance", 1e-10, 1e-1, rebuild=True),
+)
+
+SPECS_BY_NAME = {spec.name: spec for spec in PLANNER_SPECS}
+
+
+@dataclass(frozen=True)
+class PlannerSettings:
+    """Validated planner settings (SI units; names carry units where a reader could guess wrong)."""
+
+    risk_level: float = 0.05
+    risk_allocation: str = "joint"
+    horizon_steps: int = 20
+    step_s: float = 0.1
+    control_rate_hz: float = 10.0
+    robot_model: str = "double_integrator"
+    robot_radius_m: float = 0.3
+    max_speed_mps: float = 1.2
+    min_speed_mps: float = 0.0
+    max_accel_mps2: float = 1.5
+    max_turn_rate_radps: float = 1.5
+    weight_goal: float = 1.0
+    weight_terminal: float = 10.0
+    weight_speed: float = 0.1
+    weight_accel: float = 0.1
+    weight_turn: float = 0.1
+    goal_reach_m: float = 0.0
+    max_obstacles: int = 8
+    robot_accel_noise: float = 0.2
+    robot_turn_noise: float = 0.1
+    solver_max_iter: int = 100
+    solver_time_fraction: float = 0.8
+    solver_tolerance: float = 1e-4
+
+    def __post_init__(self):
+        for item in fields(self):
+            value = getattr(self, item.name)
+            if isinstance(SPECS_BY_NAME[item.name].default, float) and isinstance(value, int):
+                object.__setattr__(self, item.name, float(value))
+            reason = SPECS_BY_NAME[item.name].check(getattr(self, item.name))
+            if reason:
+                raise ValueError(reason)
+
+    def with_changes(self, **changes):
+        """Return a copy with `changes` applied; ValueError names the first invalid one."""
+        for name in changes:
+            if name not in SPECS_BY_NAME:
+                raise ValueError(f"{name!r} is not a planner setting")
+        return replace(self, **changes)
+
+    def needs_rebuild(self, other):
+        """True when going from self to `other` changes a structural setting."""
+        return any(getattr(self, s.name) != getattr(other, s.name) for s in PLANNER_SPECS if s.rebuild)
+
+    @property
+    def deadline_s(self):
+        """Wall time the solver may use per cycle."""
+        return self.solver_time_fraction / self.control_rate_hz

@@ -1,0 +1,1 @@
+"""Chance constraints made deterministic: quantiles, inflated boxes, enclosing ellipsoids, risk allocation."""
