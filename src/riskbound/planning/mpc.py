@@ -206,8 +206,10 @@ class ChanceConstrainedMPC:
             reason = "bad_input: goal is NaN or Inf"
         elif len(forecast.times) != N or not np.allclose(forecast.times, dt * np.arange(1, N + 1)):
             reason = "bad_input: forecast is not on the planner grid"
-        elif forecast.problems():
-            reason = "bad_input: " + "; ".join(forecast.problems())
+        else:
+            problems = forecast.problems()
+            if problems:
+                reason = "bad_input: " + "; ".join(problems)
         if reason:
             return PlanResult(False, reason)
 

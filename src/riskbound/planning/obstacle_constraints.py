@@ -45,15 +45,6 @@ class ObstacleConstraints:
     dropped: int
 
 
-def _ellipses(forecast, robot_position_covariances, robot_radius_m, risk):
-    """Semi-axes (J, N, 2) and shape matrices (J, N, 2, 2) of the inflated, enclosed obstacles."""
-    covariance = forecast.covariances + robot_position_covariances[None, :, :, :]
-    half = inflated_half_extents(forecast.half_extents[:, None, :], forecast.headings, robot_radius_m,
-                                 covariance, risk)
-    semi_axes = box_enclosing_semi_axes(half)
-    return semi_axes, ellipse_shape_matrix(semi_axes, forecast.headings)
-
-
 def build_obstacle_constraints(forecast, robot_position_covariances, robot_position, settings):
     """Prune, allocate risk and compute the ellipse of every kept obstacle on the planner's grid.
 
@@ -78,10 +69,13 @@ def build_obstacle_constraints(forecast, robot_position_covariances, robot_posit
         return result(per_constraint_risk(total_risk, steps, 1, mode), 0, 0)
 
     cautious_risk = per_constraint_risk(total_risk, steps, slots, mode)
-    axes, _ = _ellipses(forecast, robot_position_covariances, settings.robot_radius_m, cautious_risk)
-    distance = np.linalg.norm(forecast.positions - np.asarray(robot_position)[None, None, :], axis=-1)
-    reach = settings.max_speed_mps * forecast.times[None, :]
-    gap = distance - axes.max(axis=-1) - reach
+    covariance = forecast.covariances + robot_position_covariances[None, :, :, :]
+    half = inflated_half_extents(forecast.half_extents[:, None, :], forecast.headings, settings.robot_radius_m,
+                                 covariance, cautious_risk)
+    largest_semi_axis = box_enclosing_semi_axes(half).max(axis=-1)
+    offset = forecast.positions - np.asarray(robot_position)[None, None, :]
+    distance = np.hypot(offset[..., 0], offset[..., 1])
+    gap = distance - largest_semi_axis - settings.max_speed_mps * forecast.times[None, :]
     closest_gap = gap.min(axis=1)
     reachable = np.flatnonzero(closest_gap <= 0.0)
     order = reachable[np.argsort(closest_gap[reachable], kind="stable")]
@@ -90,14 +84,16 @@ def build_obstacle_constraints(forecast, robot_position_covariances, robot_posit
         return result(per_constraint_risk(total_risk, steps, 1, mode), 0, 0)
 
     risk = per_constraint_risk(total_risk, steps, len(kept), mode)
-    sub = type(forecast)(forecast.track_ids[kept], forecast.times, forecast.positions[kept],
-                         forecast.headings[kept], forecast.covariances[kept], forecast.half_extents[kept])
-    kept_axes, kept_shapes = _ellipses(sub, robot_position_covariances, settings.robot_radius_m, risk)
+    headings_kept = forecast.headings[kept]
+    half_kept = inflated_half_extents(forecast.half_extents[kept, None, :], headings_kept,
+                                      settings.robot_radius_m, covariance[kept], risk)
+    kept_axes = box_enclosing_semi_axes(half_kept)
+    kept_shapes = ellipse_shape_matrix(kept_axes, headings_kept)
     n = len(kept)
-    centres[:n] = sub.positions
+    centres[:n] = forecast.positions[kept]
     shapes[:n] = kept_shapes
     semi_axes[:n] = kept_axes
-    headings[:n] = sub.headings
+    headings[:n] = headings_kept
     used[:n] = True
-    track_ids[:n] = sub.track_ids
+    track_ids[:n] = forecast.track_ids[kept]
     return result(risk, n, dropped)

@@ -39,8 +39,11 @@ def inflated_half_extents(half_extents, heading, robot_radius, covariance, risk)
         raise ValueError("half_extents must not be negative")
     if robot_radius < 0.0:
         raise ValueError(f"robot_radius={robot_radius!r} must not be negative")
-    normals = face_normals(np.asarray(heading, dtype=float))
-    variance_along_normal = np.einsum("...ij,...jk,...ik->...i", normals, covariance, normals)
+    c, s = np.cos(heading), np.sin(heading)
+    sxx, sxy, syy = covariance[..., 0, 0], covariance[..., 0, 1], covariance[..., 1, 1]
+    # nᵀ Σ n for n₁ = (c, s) and n₂ = (−s, c), written out: einsum over (…, 2, 2) is far slower.
+    variance_along_normal = np.stack([c * c * sxx + 2.0 * c * s * sxy + s * s * syy,
+                                      s * s * sxx - 2.0 * c * s * sxy + c * c * syy], axis=-1)
     if np.any(variance_along_normal < -1e-12):
         raise ValueError("covariance is not positive semi-definite")
     sigma = np.sqrt(np.clip(variance_along_normal, 0.0, None))
