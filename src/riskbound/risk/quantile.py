@@ -11,7 +11,7 @@ def standard_normal_quantile(probability):
     """
     p = np.asarray(probability, dtype=float)
     if not np.all(np.isfinite(p)) or np.any(p <= 0.0) or np.any(p >= 1.0):
-        bad = p[~(np.isfinite(p) & (p > 0.0) & (p < 1.0))].ravel()[0]
+        bad = float(p[~(np.isfinite(p) & (p > 0.0) & (p < 1.0))].ravel()[0])
         raise ValueError(f"probability={bad!r} is outside the open interval (0, 1)")
     return ndtri(p)
 
@@ -24,6 +24,6 @@ def chance_constraint_backoff(risk):
     """
     a = np.asarray(risk, dtype=float)
     if not np.all(np.isfinite(a)) or np.any(a <= 0.0) or np.any(a >= 0.5):
-        bad = a[~(np.isfinite(a) & (a > 0.0) & (a < 0.5))].ravel()[0]
+        bad = float(a[~(np.isfinite(a) & (a > 0.0) & (a < 0.5))].ravel()[0])
         raise ValueError(f"risk={bad!r} is outside the open interval (0, 0.5)")
     return ndtri(1.0 - a)
