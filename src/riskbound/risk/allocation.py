@@ -11,7 +11,19 @@ Modes
     reach steps × obstacles × α. Cheaper in clearance, weaker as a guarantee.
 """
 
+import numbers
+
 ALLOCATION_MODES = ("joint", "per_constraint")
+
+
+def _count(name, value, minimum):
+    """`value` as an int: truncating a fractional count would hand out more risk than allowed."""
+    if not isinstance(value, numbers.Integral) or isinstance(value, bool):
+        raise ValueError(f"{name}={value!r} must be an integer")
+    count = int(value)
+    if count < minimum:
+        raise ValueError(f"{name}={value!r} must be at least {minimum}")
+    return count
 
 
 def per_constraint_risk(total_risk, steps, obstacles, mode="joint"):
@@ -20,10 +32,8 @@ def per_constraint_risk(total_risk, steps, obstacles, mode="joint"):
         raise ValueError(f"total_risk={total_risk!r} is outside the open interval (0, 0.5)")
     if mode not in ALLOCATION_MODES:
         raise ValueError(f"mode={mode!r} is not one of {ALLOCATION_MODES}")
-    if int(steps) < 1:
-        raise ValueError(f"steps={steps!r} must be at least 1")
-    if int(obstacles) < 0:
-        raise ValueError(f"obstacles={obstacles!r} must not be negative")
+    steps = _count("steps", steps, 1)
+    obstacles = _count("obstacles", obstacles, 0)
     if mode == "per_constraint":
         return float(total_risk)
-    return float(total_risk) / (int(steps) * max(int(obstacles), 1))
+    return float(total_risk) / (steps * max(obstacles, 1))
