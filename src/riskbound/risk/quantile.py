@@ -26,4 +26,5 @@ def chance_constraint_backoff(risk):
     if not np.all(np.isfinite(a)) or np.any(a <= 0.0) or np.any(a >= 0.5):
         bad = float(a[~(np.isfinite(a) & (a > 0.0) & (a < 0.5))].ravel()[0])
         raise ValueError(f"risk={bad!r} is outside the open interval (0, 0.5)")
-    return ndtri(1.0 - a)
+    # Φ⁻¹(1 − a) = −Φ⁻¹(a): forming 1 − a first loses the digits of a small allocated risk.
+    return -ndtri(a)
