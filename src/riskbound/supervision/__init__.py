@@ -1,0 +1,1 @@
+"""Watchdog logic without ROS: solve-time statistics, the health state machine and the stop command."""

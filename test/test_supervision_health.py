@@ -1,0 +1,236 @@
+"""Health state machine: every trigger, latching, recovery with hysteresis, transition records.
+
+The expected behaviour is the specification of issue 4 (stop within one control cycle of a fault
+being present, K consecutive fault-free cycles to recover); staleness arithmetic is common
+practice, no source.
+"""
+
+import logging
+import math
+
+import pytest
+
+from riskbound.motion.robot_models import VelocityCommand
+from riskbound.supervision.health import (DEGRADED, HEALTHY, LEVEL_ERROR, LEVEL_OK, LEVEL_STALE, LEVEL_WARN,
+                                          STOPPED, HealthMonitor, PlannerStatus, planner_status_from_values)
+from riskbound.supervision.settings import WatchdogSettings
+
+PERIOD = 0.1
+GOOD_COMMAND = VelocityCommand(0.8, 0.1, 0.2)
+GOOD_STATUS = PlannerStatus(level=LEVEL_OK, status="solved", solve_ms=20.0)
+
+
+class Clocked:
+    """A monitor fed like the node feeds it: every input fresh each cycle unless told otherwise."""
+
+    def __init__(self, **settings):
+        self.settings = WatchdogSettings(**settings)
+        self.t = 0.0
+        self.monitor = HealthMonitor(self.settings, start_s=self.t)
+
+    def cycle(self, status=GOOD_STATUS, command=GOOD_COMMAND, odom=True, forecast=True, send_status=True,
+              send_command=True):
+        self.t += PERIOD
+        if send_status:
+            self.monitor.record_status(self.t - 0.01, status)
+        if send_command:
+            self.monitor.record_command(self.t - 0.01, command)
+        if odom:
+            self.monitor.record_odometry(self.t - 0.005, self.t - 0.02)
+        if forecast:
+            self.monitor.record_forecast(self.t - 0.005, self.t - 0.05)
+        return self.monitor.step(self.t)
+
+    def run_healthy(self):
+        for _ in range(self.settings.recovery_cycles):
+            verdict = self.cycle()
+        assert verdict.state == HEALTHY and verdict.forward
+        return verdict
+
+
+def test_starts_stopped_and_needs_k_fault_free_cycles():
+    clocked = Clocked(recovery_cycles=4)
+    verdict = clocked.monitor.step(0.05)
+    assert verdict.state == STOPPED and not verdict.forward
+    assert {f.code for f in verdict.faults} == {"status_stale", "command_stale", "odom_stale", "forecast_stale"}
+    assert clocked.monitor.last_stop.cause == "startup"
+    for _ in range(3):
+        assert clocked.cycle().state == STOPPED
+    verdict = clocked.cycle()
+    assert verdict.state == HEALTHY and verdict.forward
+    assert verdict.transition.previous == STOPPED and verdict.transition.cause == "recovered"
+
+
+def _stop_cause(clocked, **cycle_kwargs):
+    clocked.run_healthy()
+    verdict = clocked.cycle(**cycle_kwargs)
+    assert verdict.state == STOPPED and not verdict.forward
+    assert verdict.transition is not None and verdict.transition.previous == HEALTHY
+    return verdict.transition.cause
+
+
+@pytest.mark.parametrize("status, cause", [
+    (PlannerStatus(level=LEVEL_ERROR, status="infeasible", solve_ms=30.0, reason="no feasible plan"),
+     "solver_failure"),
+    (PlannerStatus(level=LEVEL_OK, status="solver_failed", solve_ms=30.0), "solver_failure"),
+    (PlannerStatus(level=LEVEL_WARN, status="time_or_iteration_cap", solve_ms=79.0), "solver_failure"),
+    (PlannerStatus(level=LEVEL_STALE, status="", solve_ms=None), "solver_failure"),
+])
+def test_solver_failure_stops_in_the_same_cycle(status, cause):
+    assert _stop_cause(Clocked(), status=status) == cause
+
+
+@pytest.mark.parametrize("command, cause", [
+    (VelocityCommand(float("nan"), 0.0, 0.0), "command_invalid"),
+    (VelocityCommand(0.0, 0.0, float("inf")), "command_invalid"),
+    (VelocityCommand(1.0, 0.8, 0.0), "command_out_of_limit"),   # ‖v‖ = 1.28 > 1.2
+    (VelocityCommand(0.5, 0.0, -1.6), "command_out_of_limit"),  # |ω| = 1.6 > 1.5
+])
+def test_bad_commands_stop_in_the_same_cycle(command, cause):
+    assert _stop_cause(Clocked(max_speed_mps=1.2, max_turn_rate_radps=1.5), command=command) == cause
+
+
+def test_command_at_the_limit_passes():
+    clocked = Clocked(max_speed_mps=1.2, max_turn_rate_radps=1.5)
+    clocked.run_healthy()
+    at_limit = VelocityCommand(1.2 * math.cos(0.3), 1.2 * math.sin(0.3), -1.5)
+    assert clocked.cycle(command=at_limit).state == HEALTHY
+
+
+@pytest.mark.parametrize("silenced, cause, limit_name", [
+    ("send_status", "status_stale", "status_timeout_s"),
+    ("send_command", "command_stale", "command_timeout_s"),
+    ("odom", "odom_stale", "odom_timeout_s"),
+    ("forecast", "forecast_stale", "forecast_timeout_s"),
+])
+def test_stale_input_stops_at_the_first_cycle_past_its_limit(silenced, cause, limit_name):
+    clocked = Clocked(status_timeout_s=0.3, command_timeout_s=0.25, odom_timeout_s=0.35, forecast_timeout_s=0.5)
+    clocked.run_healthy()
+    last_fresh = clocked.t  # the silenced input was last recorded in this cycle, slightly earlier
+    while True:
+        verdict = clocked.cycle(**{silenced: False})
+        if verdict.state == STOPPED:
+            break
+        assert verdict.state == HEALTHY
+    limit = getattr(clocked.settings, limit_name)
+    age_at_stop = verdict.faults[0].detail
+    assert verdict.transition.cause == cause, age_at_stop
+    # Stopped in the first cycle whose time is past last-fresh + limit: within limit + one period.
+    assert clocked.t - PERIOD <= last_fresh + limit + PERIOD
+    assert clocked.t - last_fresh <= clocked.settings.stop_bound_s(limit) + 1e-9
+
+
+def test_stale_forecast_is_ignored_when_not_required():
+    clocked = Clocked(require_forecast=False, recovery_cycles=2)
+    for _ in range(20):
+        verdict = clocked.cycle(forecast=False)
+    assert verdict.state == HEALTHY
+
+
+def test_odometry_stamped_in_the_past_is_stale_even_when_it_just_arrived():
+    clocked = Clocked(odom_timeout_s=0.3)
+    clocked.run_healthy()
+    clocked.t += PERIOD
+    clocked.monitor.record_status(clocked.t, GOOD_STATUS)
+    clocked.monitor.record_command(clocked.t, GOOD_COMMAND)
+    clocked.monitor.record_forecast(clocked.t, clocked.t)
+    clocked.monitor.record_odometry(clocked.t, clocked.t - 0.5)  # delayed by 0.5 s on its way
+    verdict = clocked.monitor.step(clocked.t)
+    assert verdict.state == STOPPED and verdict.transition.cause == "odom_stale"
+
+
+def test_stamp_from_the_future_counts_as_arrival_time():
+    clocked = Clocked(odom_timeout_s=0.3)
+    clocked.run_healthy()
+    clocked.monitor.record_odometry(clocked.t, clocked.t + 100.0)
+    for _ in range(3):
+        assert clocked.cycle(odom=False).state == HEALTHY
+    assert clocked.cycle(odom=False).state == STOPPED
+
+
+def test_one_deadline_miss_degrades_and_consecutive_misses_stop():
+    clocked = Clocked(deadline_ms=80.0, deadline_misses_to_stop=3, recovery_cycles=3)
+    clocked.run_healthy()
+    late = PlannerStatus(level=LEVEL_OK, status="solved", solve_ms=95.0)
+    verdict = clocked.cycle(status=late)
+    assert verdict.state == DEGRADED and verdict.forward
+    assert verdict.transition.cause == "deadline_miss"
+    assert clocked.cycle(status=late).state == DEGRADED
+    verdict = clocked.cycle(status=late)
+    assert verdict.state == STOPPED and verdict.transition.cause == "deadline_misses"
+    assert verdict.transition.previous == DEGRADED
+    summary = clocked.monitor.statistics.summary()
+    assert summary.deadline_misses == 3 and summary.max_ms == 95.0
+
+
+def test_degraded_recovers_after_k_fault_free_cycles():
+    clocked = Clocked(recovery_cycles=3)
+    clocked.run_healthy()
+    warning = PlannerStatus(level=LEVEL_WARN, status="solved", solve_ms=20.0, reason="obstacles dropped")
+    verdict = clocked.cycle(status=warning)
+    assert verdict.state == DEGRADED and verdict.forward and verdict.transition.cause == "planner_warning"
+    assert clocked.cycle().state == DEGRADED
+    assert clocked.cycle().state == DEGRADED
+    verdict = clocked.cycle()
+    assert verdict.state == HEALTHY and verdict.transition.previous == DEGRADED
+
+
+def test_stop_is_latched_and_any_fault_restarts_the_recovery_count():
+    k = 5
+    clocked = Clocked(recovery_cycles=k)
+    clocked.run_healthy()
+    assert clocked.cycle(command=VelocityCommand(float("nan"), 0.0, 0.0)).state == STOPPED
+    # The fault is gone at once, but the stop holds for K − 1 more cycles...
+    for _ in range(k - 2):
+        verdict = clocked.cycle()
+        assert verdict.state == STOPPED and not verdict.forward and verdict.faults == ()
+    # ...a degrading fault during recovery restarts the count and does not release the stop...
+    late = PlannerStatus(level=LEVEL_OK, status="solved", solve_ms=90.0)
+    assert clocked.cycle(status=late).state == STOPPED
+    for _ in range(k - 1):
+        assert clocked.cycle().state == STOPPED
+    # ...and the K-th consecutive fault-free cycle releases it.
+    verdict = clocked.cycle()
+    assert verdict.state == HEALTHY and verdict.forward
+    assert clocked.monitor.last_stop.cause == "command_invalid"
+    assert clocked.monitor.stops_total == 1
+
+
+def test_every_transition_is_recorded_and_logged(caplog):
+    clocked = Clocked(recovery_cycles=2)
+    with caplog.at_level(logging.INFO, logger="riskbound.supervision.health"):
+        clocked.run_healthy()
+        clocked.cycle(status=PlannerStatus(level=LEVEL_WARN, status="solved", solve_ms=10.0, reason="w"))
+        clocked.cycle(send_status=False, status=None)
+        for _ in range(5):
+            clocked.cycle(send_status=False)
+        clocked.run_healthy()
+    path = [(t.previous, t.current, t.cause) for t in clocked.monitor.transitions]
+    assert path == [(None, STOPPED, "startup"), (STOPPED, HEALTHY, "recovered"),
+                    (HEALTHY, DEGRADED, "planner_warning"), (DEGRADED, STOPPED, "status_stale"),
+                    (STOPPED, HEALTHY, "recovered")]
+    logged = [r.getMessage() for r in caplog.records]
+    assert len(logged) == len(path)
+    assert "startup" in logged[0] and caplog.records[0].levelno == logging.WARNING
+    assert "degraded → stopped" in logged[3] and "status_stale" in logged[3] and "planner_status" in logged[3]
+    assert caplog.records[3].levelno == logging.WARNING and caplog.records[4].levelno == logging.INFO
+
+
+def test_planner_status_values_are_parsed_and_bad_solve_times_dropped():
+    status, problems = planner_status_from_values(
+        LEVEL_OK, {"solve_ms": "42.5", "iterations": "12", "solver_status": "Solve_Succeeded",
+                   "status": "solved", "reason": ""}, message="ok")
+    assert status == PlannerStatus(level=LEVEL_OK, status="solved", solve_ms=42.5, reason="ok")
+    assert problems == []
+    status, problems = planner_status_from_values(LEVEL_ERROR, {"solve_ms": "nan", "status": "infeasible",
+                                                                "reason": "obstacle on the robot"})
+    assert status.solve_ms is None and status.reason == "obstacle on the robot"
+    assert len(problems) == 1 and "solve_ms" in problems[0]
+    assert planner_status_from_values(LEVEL_OK, {"solve_ms": "fast"})[0].solve_ms is None
+
+
+def test_new_settings_apply_from_the_next_cycle():
+    clocked = Clocked()
+    clocked.run_healthy()
+    clocked.monitor.update_settings(clocked.settings.with_changes(max_speed_mps=0.5))
+    assert clocked.cycle().transition.cause == "command_out_of_limit"
