@@ -124,7 +124,8 @@ class PlannerSettings:
     def __post_init__(self):
         for item in fields(self):
             value = getattr(self, item.name)
-            if isinstance(SPECS_BY_NAME[item.name].default, float) and isinstance(value, int):
+            if (isinstance(SPECS_BY_NAME[item.name].default, float) and isinstance(value, int)
+                    and not isinstance(value, bool)):
                 object.__setattr__(self, item.name, float(value))
             reason = SPECS_BY_NAME[item.name].check(getattr(self, item.name))
             if reason:
