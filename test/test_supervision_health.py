@@ -74,9 +74,10 @@ def _stop_cause(clocked, **cycle_kwargs):
      "solver_failure"),
     (PlannerStatus(level=LEVEL_OK, status="solver_failed", solve_ms=30.0), "solver_failure"),
     (PlannerStatus(level=LEVEL_WARN, status="time_or_iteration_cap", solve_ms=79.0), "solver_failure"),
-    (PlannerStatus(level=LEVEL_STALE, status="", solve_ms=None), "solver_failure"),
+    (PlannerStatus(level=LEVEL_ERROR, status="stale_odometry", solve_ms=None), "planner_error"),
+    (PlannerStatus(level=LEVEL_STALE, status="", solve_ms=None), "planner_error"),
 ])
-def test_solver_failure_stops_in_the_same_cycle(status, cause):
+def test_planner_failure_stops_in_the_same_cycle(status, cause):
     assert _stop_cause(Clocked(), status=status) == cause
 
 
@@ -227,6 +228,10 @@ def test_planner_status_values_are_parsed_and_bad_solve_times_dropped():
     assert status.solve_ms is None and status.reason == "obstacle on the robot"
     assert len(problems) == 1 and "solve_ms" in problems[0]
     assert planner_status_from_values(LEVEL_OK, {"solve_ms": "fast"})[0].solve_ms is None
+    assert planner_status_from_values(LEVEL_OK, {"solve_ms": "12"})[0].solve_ms == 12.0
+    # A cycle that ran no solve (goal reached, stale input) adds no solve time.
+    assert planner_status_from_values(LEVEL_OK, {"solve_ms": "0", "status": "goal_reached"})[0].solve_ms is None
+    assert planner_status_from_values(LEVEL_ERROR, {"solve_ms": "0", "status": "stale_odometry"})[0].solve_ms is None
 
 
 def test_new_settings_apply_from_the_next_cycle():

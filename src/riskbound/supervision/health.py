@@ -4,8 +4,10 @@ Every control cycle the watchdog asks `HealthMonitor.step(now_s)` whether the pl
 command may go to the robot. The monitor looks at what the node recorded since the last cycle
 and finds the faults present now:
 
-    stopping faults   solver_failure        the planner says its solve failed (level ERROR/STALE,
-                                            or a failed status such as infeasible)
+    stopping faults   solver_failure        the planner says its solve failed (status infeasible,
+                                            solver_failed or time_or_iteration_cap, at any level)
+                      planner_error         the planner reports level ERROR or STALE for another
+                                            reason (stale or bad input, no goal, ...)
                       deadline_misses       `deadline_misses_to_stop` consecutive solves over the deadline
                       status_stale          no planner_status for longer than status_timeout_s
                       command_stale         no cmd_vel_plan for longer than command_timeout_s
@@ -44,6 +46,9 @@ LEVEL_OK, LEVEL_WARN, LEVEL_ERROR, LEVEL_STALE = 0, 1, 2, 3
 
 # Planner `status` values that mean no usable plan (riskbound.planning.mpc.PlanResult.status).
 FAILED_PLAN_STATUSES = frozenset({"infeasible", "solver_failed", "time_or_iteration_cap"})
+# Statuses of a cycle that ran the solver; others (no goal, goal reached, stale input, ...) carry
+# no solve time worth counting. A status without a `status` key is taken as a solve.
+SOLVE_STATUSES = FAILED_PLAN_STATUSES | {"solved", "feasible_not_converged", ""}
 
 # Absolute slack on the speed and turn-rate limits: the solver accepts constraint violations up to
 # 1e-4 (IPOPT's constr_viol_tol), which must not stop the robot.
@@ -67,10 +72,11 @@ def planner_status_from_values(level, values, message=""):
 
     Returns (status, problems): problems name what could not be used (a solve_ms that is not a
     finite number ≥ 0 is dropped, so it neither enters the statistics nor counts as a miss).
+    solve_ms is None too when the cycle ran no solve (see SOLVE_STATUSES).
     """
     problems = []
     solve_ms = None
-    if "solve_ms" in values:
+    if "solve_ms" in values and values.get("status", "") in SOLVE_STATUSES:
         try:
             solve_ms = float(values["solve_ms"])
         except ValueError:
@@ -199,8 +205,9 @@ class HealthMonitor:
         found = []
         if status.level >= LEVEL_ERROR or status.status in FAILED_PLAN_STATUSES:
             why = f": {status.reason}" if status.reason else ""
-            found.append(Fault("solver_failure",
-                               f"planner reports status {status.status or '?'} at level {status.level}{why}", True))
+            code = "solver_failure" if status.status in FAILED_PLAN_STATUSES else "planner_error"
+            found.append(Fault(code, f"planner reports status {status.status or '?'} at level {status.level}{why}",
+                               True))
         elif status.level == LEVEL_WARN:
             found.append(Fault("planner_warning", f"planner warns: {status.reason or status.status}", False))
         if status.solve_ms is not None and status.solve_ms > self.settings.deadline_ms:
