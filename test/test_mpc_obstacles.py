@@ -194,6 +194,32 @@ def test_warm_started_cycles_stay_feasible(planner):
         assert q.min() < 1.05  # still steering around the standing walker
 
 
+def test_risk_level_and_mode_change_without_rebuild(planner):
+    # Risk enters as numbers: swapping the settings on the built problem (as the planner node does
+    # for non-structural changes) changes the ellipses at the next solve.
+    settings, mpc = planner
+    x0 = start_state(settings.robot_model)
+    try:
+        axes = {}
+        for risk_level, mode in [(0.05, "joint"), (0.01, "joint"), (0.05, "per_constraint")]:
+            mpc.settings = settings.with_changes(risk_level=risk_level, risk_allocation=mode)
+            mpc.reset()
+            result = mpc.solve(x0, P0, GOAL, scene())
+            assert result.success, result.status
+            expected = risk_level / (N * result.obstacles_considered) if mode == "joint" else risk_level
+            assert result.risk_per_constraint == pytest.approx(expected, rel=1e-12)
+            used = result.constraints.used
+            q = quadratic_forms(result, result.constraints.shapes[used])
+            assert np.all(q >= 1.0 - 1e-5)
+            axes[(risk_level, mode)] = result.constraints.semi_axes[used]
+        # A smaller per-constraint risk pushes every face further out.
+        assert np.all(axes[(0.01, "joint")] > axes[(0.05, "joint")])
+        assert np.all(axes[(0.05, "per_constraint")] < axes[(0.05, "joint")])
+    finally:
+        mpc.settings = settings
+        mpc.reset()
+
+
 def test_pruning_keeps_the_nearest_reachable_obstacles(planner):
     # Two slots for three reachable walkers: the one whose ellipse comes least close to the robot's
     # reach disc is dropped. Independent ranking: gap = ‖o_k − p₀‖ − largest semi-axis − v_max t_k,
