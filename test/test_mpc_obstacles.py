@@ -38,7 +38,8 @@ def scene(offset_s=0.0):
     growth = (0.004 + 0.01 * times)[None, :, None, None] * np.eye(2)
     covariances = np.tile(growth, (4, 1, 1, 1))
     covariances[1, :, 0, 1] = covariances[1, :, 1, 0] = 0.002 * times
-    forecast = ObstacleForecast([11, 12, 13, 14], times, positions, headings, covariances, np.tile(HALF_EXTENTS, (4, 1)))
+    forecast = ObstacleForecast([11, 12, 13, 14], times, positions, headings, covariances,
+                                np.tile(HALF_EXTENTS, (4, 1)))
     grid = DT * np.arange(1, N + 1)
     on_grid = forecast.resampled(grid + offset_s)
     # The planner wants times relative to its own start (t_k = k·Δt), as the planner node relabels them.
@@ -46,8 +47,8 @@ def scene(offset_s=0.0):
                             on_grid.half_extents)
 
 
-def start_state(model_name):
-    return np.zeros(4)  # at the origin, at rest (facing +x for the unicycle)
+# At the origin, at rest (facing +x for the unicycle); the same layout [p_x, p_y, ·, ·] for both models.
+X0 = np.zeros(4)
 
 
 def numeric_jacobians(model, x, u, h=1e-6):
@@ -114,7 +115,7 @@ def planner(request):
 def test_cold_plan_obeys_dynamics_bounds_and_recomputed_ellipses(planner):
     settings, mpc = planner
     mpc.reset()
-    x0 = start_state(settings.robot_model)
+    x0 = X0.copy()
     forecast = scene()
     result = mpc.solve(x0, P0, GOAL, forecast)
     assert result.success, (result.status, result.solver_status)
@@ -150,7 +151,7 @@ def test_cold_plan_obeys_dynamics_bounds_and_recomputed_ellipses(planner):
 def test_reported_margin_is_the_ray_distance_to_the_ellipse(planner):
     settings, mpc = planner
     mpc.reset()
-    result = mpc.solve(start_state(settings.robot_model), P0, GOAL, scene())
+    result = mpc.solve(X0.copy(), P0, GOAL, scene())
     assert result.success
     constraints = result.constraints
     used = constraints.used
@@ -169,7 +170,7 @@ def test_reported_margin_is_the_ray_distance_to_the_ellipse(planner):
 def test_warm_started_cycles_stay_feasible(planner):
     settings, mpc = planner
     mpc.reset()
-    x = start_state(settings.robot_model)
+    x = X0.copy()
     result = mpc.solve(x, P0, GOAL, scene())
     assert result.success
     for cycle in range(1, 6):
@@ -198,7 +199,7 @@ def test_risk_level_and_mode_change_without_rebuild(planner):
     # Risk enters as numbers: swapping the settings on the built problem (as the planner node does
     # for non-structural changes) changes the ellipses at the next solve.
     settings, mpc = planner
-    x0 = start_state(settings.robot_model)
+    x0 = X0.copy()
     try:
         axes = {}
         for risk_level, mode in [(0.05, "joint"), (0.01, "joint"), (0.05, "per_constraint")]:
@@ -227,7 +228,7 @@ def test_pruning_keeps_the_nearest_reachable_obstacles(planner):
     settings, _ = planner
     settings = settings.with_changes(max_obstacles=2)
     mpc = ChanceConstrainedMPC(settings)
-    x0 = start_state(settings.robot_model)
+    x0 = X0.copy()
     forecast = scene()
     result = mpc.solve(x0, P0, GOAL, forecast)
     assert result.success, result.status
@@ -253,7 +254,7 @@ def test_pruning_keeps_the_nearest_reachable_obstacles(planner):
 def test_obstacle_on_the_robot_is_infeasible_without_exception(planner):
     settings, mpc = planner
     mpc.reset()
-    x0 = start_state(settings.robot_model)
+    x0 = X0.copy()
     times = DT * np.arange(1, N + 1)
     on_robot = ObstacleForecast([5], times, np.zeros((1, N, 2)), np.zeros((1, N)),
                                 np.tile(0.01 * np.eye(2), (1, N, 1, 1)), [[0.3, 0.3]])
@@ -268,7 +269,7 @@ def test_obstacle_on_the_robot_is_infeasible_without_exception(planner):
 @pytest.mark.parametrize("what", ["state", "covariance", "goal", "forecast_nan", "forecast_grid"])
 def test_bad_input_is_reported_not_raised(planner, what):
     settings, mpc = planner
-    x0, P, goal, forecast = start_state(settings.robot_model), P0.copy(), GOAL.copy(), scene()
+    x0, P, goal, forecast = X0.copy(), P0.copy(), GOAL.copy(), scene()
     if what == "state":
         x0 = x0.copy()
         x0[1] = math.nan

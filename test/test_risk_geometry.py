@@ -256,7 +256,8 @@ def test_closed_form_area_is_the_minimum_found_by_coordinate_ascent(half, headin
     closed_form = ellipse_volume(box_enclosing_semi_axes(half))
     assert closed_form == pytest.approx(ellipsoid_volume_of_shape(A), rel=1e-3)
     # The iterate's ellipse, grown by the factor that makes it enclose every point, brackets the minimum.
-    assert ellipsoid_volume_of_shape(A) * (1 - 1e-12) <= closed_form <= ellipsoid_volume_of_shape(A / factor) * (1 + 1e-12)
+    lower, upper = ellipsoid_volume_of_shape(A), ellipsoid_volume_of_shape(A / factor)
+    assert lower * (1 - 1e-12) <= closed_form <= upper * (1 + 1e-12)
     np.testing.assert_allclose(centre, 0.0, atol=1e-4)
     np.testing.assert_allclose(A, ellipse_shape_matrix(box_enclosing_semi_axes(half), heading),
                                rtol=1e-3, atol=1e-3 * np.max(A))

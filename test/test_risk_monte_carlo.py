@@ -17,7 +17,7 @@ SAMPLES = 20_000
 CASES_PER_RISK = 25
 # Angles (in the ellipse's own parametrisation) of the nominal positions tried on the boundary:
 # the axis ends, the box corners (π/4 and its mirror images) and directions between them.
-BOUNDARY_ANGLES = np.array([0.0, math.pi / 4, math.pi / 2, 0.9 * math.pi, 1.25 * math.pi, 1.6 * math.pi, 1.85 * math.pi])
+BOUNDARY_ANGLES = math.pi * np.array([0.0, 0.25, 0.5, 0.9, 1.25, 1.6, 1.85])
 
 
 def random_case(rng):

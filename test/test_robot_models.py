@@ -154,8 +154,8 @@ def test_unicycle_rollout_stays_on_the_circle(unicycle):
     second_order = (omega * dt) ** 2 / 8.0
     np.testing.assert_allclose(radius, v / omega, rtol=second_order)
     t = dt * steps
-    np.testing.assert_allclose(states[-1, 0:2], centre + v / omega * np.array([math.sin(omega * t), -math.cos(omega * t)]),
-                               atol=second_order * v / omega)
+    on_circle = centre + v / omega * np.array([math.sin(omega * t), -math.cos(omega * t)])
+    np.testing.assert_allclose(states[-1, 0:2], on_circle, atol=second_order * v / omega)
 
 
 def test_unicycle_odometry_and_command(unicycle):
