@@ -91,6 +91,18 @@ def test_bad_commands_stop_in_the_same_cycle(command, cause):
     assert _stop_cause(Clocked(max_speed_mps=1.2, max_turn_rate_radps=1.5), command=command) == cause
 
 
+def test_a_bad_command_replaced_before_the_cycle_still_stops():
+    clocked = Clocked()
+    clocked.run_healthy()
+    clocked.monitor.record_command(clocked.t + 0.02, VelocityCommand(float("nan"), 0.0, 0.0))
+    clocked.monitor.record_status(clocked.t + 0.03, PlannerStatus(level=LEVEL_ERROR, status="infeasible"))
+    verdict = clocked.cycle()  # good command and status arrive before the cycle
+    assert verdict.state == STOPPED
+    assert verdict.transition.cause == "command_invalid, solver_failure"
+    # Held faults count for one cycle only: the next fault-free cycle starts the recovery count.
+    assert clocked.cycle().faults == ()
+
+
 def test_command_at_the_limit_passes():
     clocked = Clocked(max_speed_mps=1.2, max_turn_rate_radps=1.5)
     clocked.run_healthy()
@@ -239,3 +251,35 @@ def test_new_settings_apply_from_the_next_cycle():
     clocked.run_healthy()
     clocked.monitor.update_settings(clocked.settings.with_changes(max_speed_mps=0.5))
     assert clocked.cycle().transition.cause == "command_out_of_limit"
+
+
+def test_checks_between_cycles_stop_early_without_counting_recovery_cycles():
+    clocked = Clocked(status_timeout_s=0.3, recovery_cycles=3)
+    clocked.run_healthy()
+    last_status = clocked.t - 0.01
+    clocked.monitor.record_command(clocked.t, GOOD_COMMAND)
+    check_period = 0.02
+    t = clocked.t
+    transition = None
+    while transition is None:  # the planner has gone quiet; odometry and forecast stay fresh
+        t += check_period
+        clocked.monitor.record_odometry(t, t)
+        clocked.monitor.record_forecast(t, t)
+        clocked.monitor.record_command(t, GOOD_COMMAND)
+        transition = clocked.monitor.stop_now(t)
+    # Stopped at the first check past the limit: within limit + one check period.
+    assert transition.cause == "status_stale" and clocked.monitor.state == STOPPED
+    assert 0.3 < t - last_status <= 0.3 + check_period + 1e-9
+    assert clocked.monitor.stop_now(t + check_period) is None  # already stopped: nothing new
+    assert clocked.monitor.fault_free_cycles == 0
+    for _ in range(2):
+        assert clocked.cycle().state == STOPPED
+    assert clocked.cycle().state == HEALTHY
+
+
+def test_checks_between_cycles_leave_degrading_faults_to_the_cycle():
+    clocked = Clocked()
+    clocked.run_healthy()
+    clocked.monitor.record_status(clocked.t + 0.01, PlannerStatus(level=LEVEL_WARN, status="solved", solve_ms=5.0))
+    assert clocked.monitor.stop_now(clocked.t + 0.02) is None
+    assert clocked.monitor.state == HEALTHY

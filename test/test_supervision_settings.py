@@ -40,6 +40,11 @@ def test_invalid_values_are_rejected_naming_the_parameter_and_range(name, value,
     assert name in str(error.value) and fragment in str(error.value)
 
 
+def test_check_rate_below_the_control_rate_is_rejected():
+    with pytest.raises(ValueError, match="check_rate_hz=5.0 .*control_rate_hz"):
+        WatchdogSettings(check_rate_hz=5.0, control_rate_hz=10.0)
+
+
 def test_unknown_setting_is_rejected():
     with pytest.raises(ValueError, match="not a watchdog setting"):
         WatchdogSettings().with_changes(speed=1.0)

@@ -16,6 +16,8 @@ _PLANNER = PlannerSettings()
 
 WATCHDOG_SPECS = (
     SettingSpec("control_rate_hz", 10.0, "cmd_vel publications per second", 1.0, 100.0, read_only=True),
+    SettingSpec("check_rate_hz", 50.0, "fault checks per second between control cycles: a stop is sent as "
+                "soon as a check finds a stopping fault (≥ control_rate_hz)", 1.0, 1000.0, read_only=True),
     SettingSpec("diagnostics_rate_hz", 1.0, "/diagnostics publications per second", 0.1, 10.0,
                 read_only=True),
     SettingSpec("deadline_ms", round(1e3 * _PLANNER.deadline_s, 6),
@@ -58,6 +60,7 @@ class WatchdogSettings:
     """Validated watchdog settings (SI units; names carry units where a reader could guess wrong)."""
 
     control_rate_hz: float = SPECS_BY_NAME["control_rate_hz"].default
+    check_rate_hz: float = SPECS_BY_NAME["check_rate_hz"].default
     diagnostics_rate_hz: float = SPECS_BY_NAME["diagnostics_rate_hz"].default
     deadline_ms: float = SPECS_BY_NAME["deadline_ms"].default
     deadline_misses_to_stop: int = SPECS_BY_NAME["deadline_misses_to_stop"].default
@@ -83,6 +86,9 @@ class WatchdogSettings:
             reason = spec.check(getattr(self, item.name))
             if reason:
                 raise ValueError(reason)
+        if self.check_rate_hz < self.control_rate_hz:
+            raise ValueError(f"check_rate_hz={self.check_rate_hz!r} is out of range: must be ≥ control_rate_hz "
+                             f"({self.control_rate_hz!r})")
 
     def with_changes(self, **changes):
         """Return a copy with `changes` applied; ValueError names the first invalid one."""
@@ -95,7 +101,12 @@ class WatchdogSettings:
     def control_period_s(self):
         return 1.0 / self.control_rate_hz
 
+    @property
+    def check_period_s(self):
+        return 1.0 / self.check_rate_hz
+
     def stop_bound_s(self, timeout_s):
-        """Longest time from a fault to the first stop command: the fault's staleness limit plus one
-        control period (the stale input is noticed at the first control cycle past the limit)."""
+        """Required longest time from a fault to the first stop command: the fault's staleness limit
+        plus one control period. By design the watchdog stops within the limit plus one check
+        period (check_rate_hz ≥ control_rate_hz); the difference is the margin for timer lateness."""
         return timeout_s + self.control_period_s
