@@ -61,6 +61,7 @@ class ChanceConstrainedMPC:
         self.model = make_robot_model(settings.robot_model)
         self._build()
         self._previous = None
+        self._previous_age_s = 0.0
 
     def _build(self):
         s, model = self.settings, self.model
@@ -172,25 +173,30 @@ class ChanceConstrainedMPC:
             inputs = np.zeros((N, self.model.input_dim))
             return self.model.rollout(x0, inputs, dt), inputs, None, None
         states, inputs, lam_x, lam_g, ids = self._previous
-        shift = int(np.clip(round(elapsed_s / dt), 0, N))
+        shift = int(np.clip(round((self._previous_age_s + elapsed_s) / dt), 0, N))
         idx = np.minimum(np.arange(N + 1) + shift, N)
+        step_idx = np.minimum(np.arange(N) + shift, N - 1)
         states = states[idx].copy()
-        inputs = inputs[np.minimum(np.arange(N) + shift, N - 1)].copy()
+        inputs = inputs[step_idx].copy()
         states[0] = x0
-        row_idx = np.minimum(np.arange(N) + shift, N - 1)
-        lam_g = lam_g.reshape(N, self._row)[row_idx].ravel()
+        lam_states, lam_inputs = self._unpack(lam_x)
+        lam_x = self._pack(lam_states[idx], lam_inputs[step_idx])
+        lam_g = lam_g.reshape(N, self._row)[step_idx].ravel()
         return states, inputs, lam_x, (lam_g, ids)
 
     def reset(self):
-        """Forget the warm start (after a goal change, a jump in odometry or a failure)."""
+        """Forget the warm start (after a goal change or a jump in odometry)."""
         self._previous = None
+        self._previous_age_s = 0.0
 
     # --- the cycle -------------------------------------------------------------------------------
 
     def solve(self, x0, P0, goal, forecast, elapsed_s=None):
         """Plan from state x0 (covariance P0) to `goal` among `forecast` obstacles.
 
-        forecast: ObstacleForecast on the grid t_k = k·Δt, k = 1…N (use `forecast.resampled`)
+        forecast: ObstacleForecast whose `times` are exactly k·Δt, k = 1…N, counted from the moment
+            of x0: resample at those instants (`forecast.resampled(k·Δt + offset)` with offset = state
+            stamp − forecast stamp) and set `times` back to k·Δt before calling.
         elapsed_s: time since the previous solve (for the warm-start shift); default one step
         """
         s, model = self.settings, self.model
@@ -200,8 +206,10 @@ class ChanceConstrainedMPC:
         reason = None
         if x0.shape != (model.state_dim,) or not np.all(np.isfinite(x0)):
             reason = "bad_input: robot state is missing, NaN or Inf"
-        elif not np.all(np.isfinite(P0)):
-            reason = "bad_input: robot covariance is NaN or Inf"
+        elif np.shape(P0) != (model.state_dim, model.state_dim) or not np.all(np.isfinite(P0)):
+            reason = f"bad_input: robot covariance must be a finite {model.state_dim}×{model.state_dim} matrix"
+        elif np.min(np.linalg.eigvalsh(0.5 * (np.asarray(P0) + np.asarray(P0).T))) < -1e-9:
+            reason = "bad_input: robot covariance is not positive semi-definite"
         elif goal.shape != (2,) or not np.all(np.isfinite(goal)):
             reason = "bad_input: goal is NaN or Inf"
         elif len(forecast.times) != N or not np.allclose(forecast.times, dt * np.arange(1, N + 1)):
@@ -271,8 +279,13 @@ class ChanceConstrainedMPC:
         if success:
             self._previous = (states, inputs, np.asarray(solution["lam_x"]).ravel(),
                               np.asarray(solution["lam_g"]).ravel(), constraints.track_ids.copy())
-        else:
-            self._previous = None
+            self._previous_age_s = 0.0
+        elif self._previous is not None:
+            # Keep the last good plan as the starting point, shifted by the time since it was made:
+            # a cold start after one missed cycle costs many more iterations than a stale warm start.
+            self._previous_age_s += elapsed_s
+            if self._previous_age_s > N * dt:
+                self.reset()
         return result
 
     @staticmethod
@@ -286,4 +299,9 @@ class ChanceConstrainedMPC:
         n = constraints.considered
         d = states[None, 1:, 0:2] - constraints.centres[:n]
         q = np.einsum("jki,jkil,jkl->jk", d, constraints.shapes[:n], d)
-        return float(np.min(np.linalg.norm(d, axis=-1) * (1.0 - 1.0 / np.sqrt(np.maximum(q, 1e-300)))))
+        distance = np.linalg.norm(d, axis=-1)
+        margin = distance * (1.0 - 1.0 / np.sqrt(np.maximum(q, 1e-300)))
+        # At the centre itself the ray is undefined: the depth is at least the smallest semi-axis.
+        at_centre = distance < 1e-9
+        margin[at_centre] = -constraints.semi_axes[:n].min(axis=-1)[at_centre]
+        return float(np.min(margin))
