@@ -1,7 +1,7 @@
 """The `riskbound` command: one entry for the offline tools and the operator's helpers.
 
-Subcommands import their modules lazily so that `riskbound --help` is fast and the offline tools
-do not need a ROS install unless they talk to a ROS graph.
+Only the chosen subcommand's module is imported, so `riskbound --help` is fast and the offline
+tools do not need a ROS install unless they talk to a ROS graph.
 """
 
 import argparse
@@ -13,23 +13,24 @@ SUBCOMMANDS = {
     "demo": ("riskbound.demo", "run the planner on a scripted plaza crossing and write a PNG and a summary"),
     "bench": ("riskbound.bench", "benchmarks: planner solve times and others; prints figures, writes JSON/PNG"),
     "param": ("riskbound.ros.param_client", "get, set or list a running node's parameters"),
+    "crowd": ("riskbound.crowd.cli", "generate a synthetic crowd bag from a scenario file"),
 }
 
 
-def build_parser():
-    parser = argparse.ArgumentParser(prog="riskbound", description=__doc__.splitlines()[0])
-    sub = parser.add_subparsers(dest="command", required=True)
-    for name, (module_name, help_text) in SUBCOMMANDS.items():
-        sub_parser = sub.add_parser(name, help=help_text, description=help_text)
-        sub_parser.set_defaults(_module=module_name)
-        importlib.import_module(module_name).add_arguments(sub_parser)
-    return parser
-
-
 def main(argv=None):
-    args = build_parser().parse_args(argv)
+    listing = "\n".join(f"  {name:<8} {help_text}" for name, (_, help_text) in SUBCOMMANDS.items())
+    parser = argparse.ArgumentParser(prog="riskbound", description=__doc__.splitlines()[0],
+                                     epilog="commands:\n" + listing,
+                                     formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("command", choices=sorted(SUBCOMMANDS), metavar="COMMAND", help="see the list below")
+    parser.add_argument("rest", nargs=argparse.REMAINDER, help="the command's own arguments (COMMAND --help)")
+    args = parser.parse_args(argv)
+    module_name, help_text = SUBCOMMANDS[args.command]
+    module = importlib.import_module(module_name)
+    sub_parser = argparse.ArgumentParser(prog=f"riskbound {args.command}", description=help_text)
+    module.add_arguments(sub_parser)
     try:
-        return importlib.import_module(args._module).run(args)
+        return module.run(sub_parser.parse_args(args.rest))
     except KeyboardInterrupt:
         return 130
 
