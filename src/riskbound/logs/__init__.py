@@ -1,0 +1,1 @@
+"""Bags and logs: rosbag2 reading and writing without a ROS install."""
