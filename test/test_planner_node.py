@@ -29,6 +29,8 @@ from std_msgs.msg import Header
 from trajectory_msgs.msg import MultiDOFJointTrajectory
 
 from riskbound.motion.forecast import ObstacleForecast
+from riskbound.motion.robot_models import make_robot_model
+from riskbound.ros.plan_messages import plan_kinematics
 from riskbound.ros.conversions import quaternion_to_yaw, seconds_to_stamp, stamp_to_seconds, yaw_to_quaternion
 from riskbound.ros.forecast_codec import forecast_to_cloud
 
@@ -197,6 +199,34 @@ def graph(tmp_path_factory):
 def newest_ok_status(driver, since=0.0):
     ok = [s for s in driver.messages("status", since) if s.level == DiagnosticStatus.OK]
     return ok[-1] if ok else None
+
+
+def test_unicycle_reference_on_a_circle_has_centripetal_acceleration():
+    """Uniform circular motion: |a| = v ω = v²/r, pointing at the centre (common practice, no source)."""
+    v, omega, dt, yaw0 = 0.8, 0.5, 0.1, 0.3
+    model = make_robot_model("unicycle")
+    inputs = np.tile([0.0, omega], (10, 1))
+    states = model.rollout([1.0, 2.0, yaw0, v], inputs, dt)
+    positions, yaws, velocities, yaw_rates, accelerations = plan_kinematics("unicycle", states, inputs, yaw0, dt)
+    radius = v / omega
+    centre = np.array([1.0, 2.0]) + radius * np.array([-math.sin(yaw0), math.cos(yaw0)])
+    to_centre = (centre - positions[:-1]) / np.linalg.norm(centre - positions[:-1], axis=1, keepdims=True)
+    assert np.linalg.norm(accelerations[:-1], axis=1) == pytest.approx(np.full(10, v * omega), rel=1e-9)
+    # The midpoint step's chord is v Δt instead of 2r sin(ωΔt/2): relative error (ωΔt)²/24 ≈ 1e-4
+    # per step, so the rolled-out points sit that far off the exact circle.
+    assert accelerations[:-1] / (v * omega) == pytest.approx(to_centre, abs=5e-4)
+    assert np.linalg.norm(velocities, axis=1) == pytest.approx(np.full(11, v), rel=1e-12)
+    assert yaw_rates[:-1] == pytest.approx(np.full(10, omega)) and yaw_rates[-1] == 0.0
+    assert np.all(accelerations[-1] == 0.0), "nothing is planned beyond the last point"
+
+
+def test_double_integrator_yaw_follows_the_velocity():
+    states = np.array([[0.0, 0.0, 0.0, 0.0], [0.0, 0.005, 0.0, 0.1], [0.0, 0.02, 0.0, 0.2]])
+    inputs = np.array([[0.0, 1.0], [0.0, 1.0]])
+    _, yaws, _, yaw_rates, accelerations = plan_kinematics("double_integrator", states, inputs, 0.3, 0.1)
+    assert yaws == pytest.approx([0.3, math.pi / 2, math.pi / 2]), "at rest the odometry yaw is kept"
+    assert yaw_rates == pytest.approx([(math.pi / 2 - 0.3) / 0.1, 0.0, 0.0])
+    assert accelerations == pytest.approx(np.array([[0.0, 1.0], [0.0, 1.0], [0.0, 0.0]]))
 
 
 def test_inputs_in_plan_command_and_status_out(graph):
