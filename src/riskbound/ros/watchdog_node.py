@@ -5,8 +5,9 @@ the planner may drive: if so it republishes the planner's latest cmd_vel_plan, o
 (riskbound.supervision.stop: zero, or a ramp within the deceleration limits), latched until
 recovery_cycles fault-free cycles in a row. Between control cycles it checks for stopping faults
 at check_rate_hz and sends the stop at once, so a fault stops the robot within its staleness limit
-plus one check period, well inside the required limit plus one control period. It publishes /diagnostics (one DiagnosticStatus,
-level OK/WARN/ERROR for healthy/degraded/stopped) at diagnostics_rate_hz and at every transition.
+plus one check period, well inside the required limit plus one control period. It publishes
+/diagnostics (one DiagnosticStatus, level OK/WARN/ERROR for healthy/degraded/stopped) at
+diagnostics_rate_hz and at every transition.
 
 Inputs: cmd_vel_plan (TwistStamped), planner_status (DiagnosticStatus: level, status, solve_ms,
 reason), odom (Odometry, sensor-data QoS; header stamp), obstacle_forecast (PointCloud2; header
