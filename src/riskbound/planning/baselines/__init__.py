@@ -1,0 +1,1 @@
+"""Benchmark baselines on the MPC's robot models, cost and forecasts: mixed-integer, linearised, robust inflation."""

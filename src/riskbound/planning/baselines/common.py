@@ -1,0 +1,226 @@
+"""What every benchmark baseline shares with the chance-constrained MPC: cost, dynamics, bounds, cycle.
+
+The baselines differ from `riskbound.planning.mpc` only in how an obstacle enters the problem, so
+everything else follows the MPC's conventions exactly (see its module docstring):
+
+    w = [x₀, u₀, x₁, u₁, …, x_{N−1}, u_{N−1}, x_N]   (extra variables, if any, appended after)
+    cost = Σ_{k<N} [ w_g ‖p_k − r‖² + w_s ‖v_k‖² + w_a a_k² (+ w_ω ω_k²) ] + w_T ‖p_N − r‖² + w_s ‖v_N‖²
+    rows per step k: x_{k+1} − f(x_k, u_k) = 0, the octagon speed limit (double integrator),
+                     then the method's obstacle rows
+
+with r the goal clipped to the robot's reach, the same input and speed bounds, the same robot
+covariance (propagated along the initial guess) and the same pruning and risk allocation
+(`build_obstacle_constraints`). `plan_cost` evaluates the cost of any plan numerically so that
+every method is scored by one function.
+"""
+
+import time
+
+import casadi as ca
+import numpy as np
+
+from riskbound.motion.covariance import propagate_along_trajectory
+from riskbound.motion.robot_models import make_robot_model
+from riskbound.planning.mpc import FEASIBILITY_TOLERANCE, SPEED_FACE_FACTOR, SPEED_FACE_NORMALS, PlanResult
+
+
+def goal_reference(settings, position, goal):
+    """The goal clipped to the robot's reach from `position` (the MPC's reference r)."""
+    s = settings
+    reach = s.goal_reach_m if s.goal_reach_m > 0.0 else s.max_speed_mps * s.horizon_steps * s.step_s
+    position = np.asarray(position, dtype=float)
+    offset = np.asarray(goal, dtype=float) - position
+    distance = np.linalg.norm(offset)
+    return position + offset * min(1.0, reach / distance) if distance > 0.0 else position.copy()
+
+
+def plan_cost(settings, states, inputs, reference):
+    """Cost of a plan (states (N+1, n), inputs (N, m)) under the MPC's objective, numerically."""
+    s = settings
+    states = np.asarray(states, dtype=float)
+    inputs = np.asarray(inputs, dtype=float)
+    position_error = np.sum((states[:, 0:2] - np.asarray(reference)[None, :]) ** 2, axis=1)
+    if s.robot_model == "unicycle":
+        speed_sq = states[:, 3] ** 2
+        input_cost = s.weight_accel * inputs[:, 0] ** 2 + s.weight_turn * inputs[:, 1] ** 2
+    else:
+        speed_sq = np.sum(states[:, 2:4] ** 2, axis=1)
+        input_cost = s.weight_accel * np.sum(inputs**2, axis=1)
+    stage = s.weight_goal * position_error[:-1] + s.weight_speed * speed_sq[:-1] + input_cost
+    return float(np.sum(stage) + s.weight_terminal * position_error[-1] + s.weight_speed * speed_sq[-1])
+
+
+def forecast_problem(forecast, settings):
+    """Reason `forecast` cannot be planned with (None when fine): the MPC's grid and sanity checks."""
+    N, dt = settings.horizon_steps, settings.step_s
+    if len(forecast.times) != N or not np.allclose(forecast.times, dt * np.arange(1, N + 1)):
+        return "bad_input: forecast is not on the planner grid"
+    problems = forecast.problems()
+    return "bad_input: " + "; ".join(problems) if problems else None
+
+
+class BaselinePlanner:
+    """Shared skeleton of a baseline: validation, warm start, robot covariance, reference, bounds.
+
+    A subclass builds its solver from `_symbols()` (decision variables, cost, dynamics and speed rows)
+    plus its own obstacle rows, and implements `_solve_cycle`, which returns a `PlanResult` whose
+    `constraints` holds the obstacle numbers it used.
+    """
+
+    solver_name = ""
+
+    def __init__(self, settings):
+        self.settings = settings
+        self.model = make_robot_model(settings.robot_model)
+        self._previous = None
+
+    # --- symbolic pieces -------------------------------------------------------------------------
+
+    def _symbols(self):
+        """Decision variables, cost and per-step dynamics/speed rows, exactly as the MPC writes them."""
+        s, model = self.settings, self.model
+        N, n, m, dt = s.horizon_steps, model.state_dim, model.input_dim, s.step_s
+        X = [ca.SX.sym(f"x{k}", n) for k in range(N + 1)]
+        U = [ca.SX.sym(f"u{k}", m) for k in range(N)]
+        reference = ca.SX.sym("reference", 2)
+        weights = ca.SX.sym("weights", 5)  # goal, terminal, speed, accel, turn
+        w_goal, w_terminal, w_speed, w_accel, w_turn = (weights[i] for i in range(5))
+        unicycle = model.name == "unicycle"
+
+        def speed_sq(x):
+            return x[3] ** 2 if unicycle else ca.sumsqr(x[2:4])
+
+        def input_cost(u):
+            return w_accel * u[0] ** 2 + w_turn * u[1] ** 2 if unicycle else w_accel * ca.sumsqr(u)
+
+        cost = 0
+        step_rows = []
+        for k in range(N):
+            cost += w_goal * ca.sumsqr(X[k][0:2] - reference) + w_speed * speed_sq(X[k]) + input_cost(U[k])
+            rows = [X[k + 1] - model.discrete_step(X[k], U[k], dt)]
+            if not unicycle:
+                rows.append(ca.mtimes(SPEED_FACE_NORMALS, X[k + 1][2:4]))
+            step_rows.append(rows)
+        cost += w_terminal * ca.sumsqr(X[N][0:2] - reference) + w_speed * speed_sq(X[N])
+        w = ca.vertcat(*[ca.vertcat(X[k], U[k]) for k in range(N)], X[N])
+        return X, U, w, reference, weights, cost, step_rows
+
+    # --- numbers ---------------------------------------------------------------------------------
+
+    def _weights(self):
+        s = self.settings
+        return [s.weight_goal, s.weight_terminal, s.weight_speed, s.weight_accel, s.weight_turn]
+
+    def _variable_bounds(self, x0):
+        """Bounds on w (states and inputs) as in the MPC: x₀ fixed, input limits, unicycle speed."""
+        s, model = self.settings, self.model
+        N, n, m = s.horizon_steps, model.state_dim, model.input_dim
+        lbx = np.full((N + 1) * (n + m) - m, -np.inf)
+        ubx = np.full_like(lbx, np.inf)
+        lbx[:n] = ubx[:n] = x0
+        steps = np.arange(N)
+        inputs = steps * (n + m) + n
+        if model.name == "unicycle":
+            lbx[(steps + 1) * (n + m) + 3], ubx[(steps + 1) * (n + m) + 3] = s.min_speed_mps, s.max_speed_mps
+            lbx[inputs], ubx[inputs] = -s.max_accel_mps2, s.max_accel_mps2
+            lbx[inputs + 1], ubx[inputs + 1] = -s.max_turn_rate_radps, s.max_turn_rate_radps
+        else:
+            for axis in range(m):
+                lbx[inputs + axis], ubx[inputs + axis] = -s.max_accel_mps2, s.max_accel_mps2
+        return lbx, ubx
+
+    def _motion_row_bounds(self):
+        """Lower and upper bounds of one step's dynamics and speed rows."""
+        n = self.model.state_dim
+        if self.model.name == "unicycle":
+            return np.zeros(n), np.zeros(n)
+        face_speed = self.settings.max_speed_mps * SPEED_FACE_FACTOR
+        speed_rows = len(SPEED_FACE_NORMALS)
+        return (np.concatenate([np.zeros(n), np.full(speed_rows, -face_speed)]),
+                np.concatenate([np.zeros(n), np.full(speed_rows, face_speed)]))
+
+    def _unpack(self, w):
+        n, m, N = self.model.state_dim, self.model.input_dim, self.settings.horizon_steps
+        w = np.asarray(w, dtype=float).ravel()
+        body = w[: N * (n + m)].reshape(N, n + m)
+        states = np.vstack([body[:, :n], w[N * (n + m): N * (n + m) + n].reshape(1, n)])
+        return states, body[:, n:]
+
+    @staticmethod
+    def _pack(states, inputs):
+        return np.concatenate([np.hstack([states[:-1], inputs]).ravel(), states[-1]])
+
+    def _initial_guess(self, x0, elapsed_s):
+        """Shifted previous plan, or the zero-input rollout (what the MPC starts from)."""
+        N, dt = self.settings.horizon_steps, self.settings.step_s
+        if self._previous is None:
+            inputs = np.zeros((N, self.model.input_dim))
+            return self.model.rollout(x0, inputs, dt), inputs
+        states, inputs = self._previous
+        shift = int(np.clip(round(elapsed_s / dt), 0, N))
+        states = states[np.minimum(np.arange(N + 1) + shift, N)].copy()
+        inputs = inputs[np.minimum(np.arange(N) + shift, N - 1)].copy()
+        states[0] = x0
+        return states, inputs
+
+    def reset(self):
+        """Forget the previous plan."""
+        self._previous = None
+
+    def robot_position_covariances(self, guess_states, guess_inputs, P0):
+        """(N, 2, 2) robot position covariance at steps 1…N along the guess (as the MPC does)."""
+        s = self.settings
+        covariances = propagate_along_trajectory(self.model, guess_states, guess_inputs, s.step_s, P0,
+                                                 s.robot_accel_noise, s.robot_turn_noise)
+        return covariances[1:, 0:2, 0:2]
+
+    def _check_inputs(self, x0, P0, goal, forecast):
+        if x0.shape != (self.model.state_dim,) or not np.all(np.isfinite(x0)):
+            return "bad_input: robot state is missing, NaN or Inf"
+        if not np.all(np.isfinite(P0)):
+            return "bad_input: robot covariance is NaN or Inf"
+        if goal.shape != (2,) or not np.all(np.isfinite(goal)):
+            return "bad_input: goal is NaN or Inf"
+        return forecast_problem(forecast, self.settings)
+
+    def solve(self, x0, P0, goal, forecast, elapsed_s=None):
+        """Plan from x0 (covariance P0) to `goal` among `forecast` obstacles; same contract as the MPC."""
+        x0 = np.asarray(x0, dtype=float)
+        goal = np.asarray(goal, dtype=float)
+        reason = self._check_inputs(x0, np.asarray(P0, dtype=float), goal, forecast)
+        if reason:
+            return PlanResult(False, reason)
+        started = time.perf_counter()
+        elapsed_s = self.settings.step_s if elapsed_s is None else elapsed_s
+        guess_states, guess_inputs = self._initial_guess(x0, elapsed_s)
+        robot_cov = self.robot_position_covariances(guess_states, guess_inputs, P0)
+        reference = goal_reference(self.settings, x0[0:2], goal)
+        result = self._solve_cycle(x0, reference, forecast, robot_cov, guess_states, guess_inputs, started)
+        self._previous = (result.states.copy(), result.inputs.copy()) if result.success else None
+        return result
+
+    def _solve_cycle(self, x0, reference, forecast, robot_cov, guess_states, guess_inputs, started):
+        raise NotImplementedError
+
+    @staticmethod
+    def violation(w, g, lbx, ubx, lbg, ubg):
+        """Largest bound or row violation of a returned point."""
+        return max(np.max(lbg - g, initial=0.0), np.max(g - ubg, initial=0.0),
+                   np.max(lbx - w, initial=0.0), np.max(w - ubx, initial=0.0))
+
+
+def classify(solver_status, converged, capped, feasible):
+    """The MPC's status words from a solver's return status and a feasibility check."""
+    if solver_status in converged and feasible:
+        return "solved"
+    if solver_status in capped and feasible:
+        return "feasible_not_converged"
+    if solver_status in capped:
+        return "time_or_iteration_cap"
+    if "nfeasible" in solver_status or "INFEASIBLE" in solver_status:
+        return "infeasible"
+    return "solver_failed"
+
+
+__all__ = ["BaselinePlanner", "FEASIBILITY_TOLERANCE", "PlanResult", "classify", "forecast_problem",
+           "goal_reference", "plan_cost"]
