@@ -19,6 +19,7 @@ import numpy as np
 
 from riskbound.motion.covariance import propagate_along_trajectory
 from riskbound.motion.robot_models import make_robot_model
+from riskbound.planning.buffered_function import BufferedFunction
 from riskbound.planning.obstacle_constraints import build_obstacle_constraints
 
 # IPOPT return statuses whose iterate we may use if it is also feasible.
@@ -117,8 +118,8 @@ class ChanceConstrainedMPC:
             "ipopt.warm_start_mult_bound_push": 1e-9,
         })
         nlp = {"x": w, "f": cost, "g": g, "p": p}
-        self._cold_solver = ca.nlpsol("chance_constrained_mpc_cold", "ipopt", nlp, common)
-        self._warm_solver = ca.nlpsol("chance_constrained_mpc_warm", "ipopt", nlp, warm)
+        self._cold_solver = BufferedFunction(ca.nlpsol("chance_constrained_mpc_cold", "ipopt", nlp, common))
+        self._warm_solver = BufferedFunction(ca.nlpsol("chance_constrained_mpc_warm", "ipopt", nlp, warm))
         self._row = n + (0 if unicycle else len(SPEED_FACE_NORMALS)) + M  # constraint rows per step
         self._n_w = w.shape[0]
         self._n_g = g.shape[0]
@@ -250,8 +251,8 @@ class ChanceConstrainedMPC:
         solve_ms = 1e3 * (time.perf_counter() - started)
         stats = solver.stats()
         solver_status = stats.get("return_status", "unknown")
-        w = np.asarray(solution["x"]).ravel()
-        g = np.asarray(solution["g"]).ravel()
+        w = solution["x"].copy()
+        g = solution["g"]
         violation = max(np.max(lbg - g, initial=0.0), np.max(g - ubg, initial=0.0),
                         np.max(lbx - w, initial=0.0), np.max(w - ubx, initial=0.0))
         finite = np.all(np.isfinite(w))
@@ -271,14 +272,14 @@ class ChanceConstrainedMPC:
         states, inputs = self._unpack(w)
         result = PlanResult(
             success=success, status=status, solver_status=solver_status, solve_ms=solve_ms,
-            iterations=int(stats.get("iter_count", 0)), cost=float(solution["f"]),
+            iterations=int(stats.get("iter_count", 0)), cost=float(solution["f"][0]),
             obstacles_considered=constraints.considered, obstacles_dropped=constraints.dropped,
             risk_per_constraint=constraints.risk,
             min_margin_m=self._min_margin(states, constraints) if finite else float("nan"),
             times=dt * np.arange(N + 1), states=states, inputs=inputs, constraints=constraints)
         if success:
-            self._previous = (states, inputs, np.asarray(solution["lam_x"]).ravel(),
-                              np.asarray(solution["lam_g"]).ravel(), constraints.track_ids.copy())
+            self._previous = (states, inputs, solution["lam_x"].copy(), solution["lam_g"].copy(),
+                              constraints.track_ids.copy())
             self._previous_age_s = 0.0
         elif self._previous is not None:
             # Keep the last good plan as the starting point, shifted by the time since it was made:
