@@ -71,8 +71,8 @@ def _generate(args):
           f"at {args.rate_hz:g} Hz, frame {args.frame!r}")
     print(f"  walkers: {summary.spawned} appeared, {summary.exited} left, {summary.turned_away} turned away, "
           f"{summary.mean_present:.1f} present on average (max {summary.max_present})")
-    print(f"  closest approach between walkers {summary.min_gap_m:.3f} m, to walls/obstacles "
-          f"{summary.min_boundary_gap_m:.3f} m (disc gaps); {summary.contacts} contacts resolved")
+    print(f"  closest approach between walkers {round(summary.min_gap_m, 3) + 0.0:.3f} m, to walls/obstacles "
+          f"{round(summary.min_boundary_gap_m, 3) + 0.0:.3f} m (disc gaps); {summary.contacts} contacts resolved")
     print(f"  detections: {summary.detections} reported, {summary.missed} missed, {summary.clutter} clutter; "
           f"{summary.clock_messages} /clock messages")
     print(f"  took {total_s:.1f} s (simulate {summary.simulate_s:.1f} s, write {summary.write_s:.1f} s): "

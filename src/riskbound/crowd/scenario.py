@@ -49,6 +49,8 @@ from pathlib import Path
 import numpy as np
 import yaml
 
+from riskbound.crowd.social_force import crossed_walls
+
 DISTRIBUTIONS = ("constant", "normal", "uniform")
 
 _TOP_LEVEL = ("name", "description", "duration_s", "warmup_s", "sim_step_s", "walker_radius_m",
@@ -331,20 +333,10 @@ def _check_route_legs(scenario):
     for route_name, route in scenario.routes.items():
         for here, choices in route.links.items():
             for there in choices:
-                start = scenario.waypoints[here].centre
-                end = scenario.waypoints[there].centre
-                for i, (a, b) in enumerate(scenario.walls):
-                    if _segments_cross(start, end, a, b):
-                        raise ValueError(f"routes.{route_name}.links.{here}.{there}: the straight leg from "
-                                         f"{here!r} to {there!r} crosses walls[{i}]; add a waypoint around it")
-
-
-def _segments_cross(p1, p2, q1, q2):
-    def side(a, b, c):
-        return (b[0] - a[0]) * (c[1] - a[1]) - (b[1] - a[1]) * (c[0] - a[0])
-    d1, d2 = side(q1, q2, p1), side(q1, q2, p2)
-    d3, d4 = side(p1, p2, q1), side(p1, p2, q2)
-    return d1 * d2 < 0.0 and d3 * d4 < 0.0
+                crossed = crossed_walls(scenario.waypoints[here].centre, scenario.waypoints[there].centre, scenario.walls)
+                if len(crossed):
+                    raise ValueError(f"routes.{route_name}.links.{here}.{there}: the straight leg from "
+                                     f"{here!r} to {there!r} crosses walls[{crossed[0]}]; add a waypoint around it")
 
 
 def _group_sizes(value, field):

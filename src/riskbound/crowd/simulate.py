@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from riskbound.crowd.social_force import Geometry, SocialForceParameters, boundary_clearance, step
+from riskbound.crowd.social_force import Geometry, SocialForceParameters, boundary_clearance, crossed_walls, step
 
 GROUP_SPREAD_M = 0.8         # a member this far from its group's centre feels the spring
 GROUP_STIFFNESS_PER_S2 = 1.0  # spring constant per metre beyond the spread [1/s²]
@@ -104,8 +104,11 @@ class _Crowd:
         angle = self.rng.uniform(0.0, 2.0 * np.pi)
         return waypoint.centre + radius * np.array([np.cos(angle), np.sin(angle)])
 
-    def _is_free(self, point, placed):
+    def _is_free(self, point, placed, anchor):
+        """Room for a new walker at `point`, on the same side of every wall as `anchor`."""
         radius = self.scenario.walker_radius_m
+        if len(crossed_walls(anchor, point, self.geometry.walls)):
+            return False
         others = np.vstack([self.positions] + placed) if placed else self.positions
         if len(others) and np.min(np.linalg.norm(others - point, axis=1)) < 2 * radius + SPAWN_CLEARANCE_M:
             return False
@@ -115,9 +118,10 @@ class _Crowd:
         sizes = list(table)
         return int(sizes[self.rng.choice(len(sizes), p=np.array([table[s] for s in sizes]))])
 
-    def add_group(self, route, start_waypoint, group_sizes, sample_point, max_size=None):
+    def add_group(self, route, start_waypoint, group_sizes, sample_point, anchor=None, max_size=None):
         """Place one group whose members appear at points drawn by `sample_point(first member or
-        None)`; members that find no free spot are turned away. Returns how many were placed."""
+        None)`, each in sight of `anchor` (the first member when None) with no wall between;
+        members that find no free spot are turned away. Returns how many were placed."""
         size = self._draw_group_size(group_sizes)
         if max_size is not None:
             size = min(size, max_size)
@@ -133,7 +137,8 @@ class _Crowd:
         for member in range(size):
             for _ in range(SPAWN_ATTEMPTS):
                 candidate = sample_point(placed[0] if placed else None)
-                if self._is_free(candidate, [p[None, :] for p in placed]):
+                seen_from = anchor if anchor is not None else (placed[0] if placed else candidate)
+                if self._is_free(candidate, [p[None, :] for p in placed], seen_from):
                     placed.append(candidate)
                     break
         self.run.turned_away += size - len(placed)
@@ -168,7 +173,7 @@ class _Crowd:
             angle = self.rng.uniform(0.0, 2.0 * np.pi)
             return centre + radius * np.array([np.cos(angle), np.sin(angle)])
 
-        self.add_group(source.route, source.waypoint, source.group_sizes, sample_point)
+        self.add_group(source.route, source.waypoint, source.group_sizes, sample_point, anchor=waypoint.centre)
 
     def spawn_initial(self, crowd, label):
         x_min, x_max, y_min, y_max = crowd.region

@@ -101,6 +101,19 @@ def nearest_points_on_segments(points, segments):
     return start[None, :, :] + fraction[..., None] * along[None, :, :]
 
 
+def crossed_walls(start, end, walls):
+    """Indices of the wall segments (M, 2, 2) that the segment start → end properly crosses."""
+    walls = np.asarray(walls, dtype=float).reshape(-1, 2, 2)
+    start, end = np.asarray(start, dtype=float), np.asarray(end, dtype=float)
+
+    def side(a, b, c):
+        return (b[..., 0] - a[..., 0]) * (c[..., 1] - a[..., 1]) - (b[..., 1] - a[..., 1]) * (c[..., 0] - a[..., 0])
+
+    q1, q2 = walls[:, 0], walls[:, 1]
+    crosses = (side(q1, q2, start) * side(q1, q2, end) < 0.0) & (side(start, end, q1) * side(start, end, q2) < 0.0)
+    return np.flatnonzero(crosses)
+
+
 def boundary_clearance(points, radii, geometry):
     """Smallest gap between each walker's disc and any wall or obstacle [m] (inf when none);
     negative means overlap."""
