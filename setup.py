@@ -31,6 +31,8 @@ setup(
         "console_scripts": [
             "riskbound = riskbound.cli:main",
             "planner_node = riskbound.ros.planner_node:main",
+            "watchdog_node = riskbound.ros.watchdog_node:main",
+            "sim_robot_node = riskbound.ros.sim_robot_node:main",
         ],
     },
 )

@@ -31,7 +31,7 @@ from trajectory_msgs.msg import MultiDOFJointTrajectory
 from riskbound.motion.forecast import ObstacleForecast
 from riskbound.motion.robot_models import make_robot_model
 from riskbound.ros.plan_messages import plan_kinematics
-from riskbound.ros.conversions import quaternion_to_yaw, seconds_to_stamp, stamp_to_seconds, yaw_to_quaternion
+from riskbound.ros.conversions import seconds_to_stamp, stamp_to_seconds, yaw_to_quaternion
 from riskbound.ros.forecast_codec import forecast_to_cloud
 
 HORIZON_STEPS = 20

@@ -22,8 +22,7 @@ import rclpy
 from diagnostic_msgs.msg import DiagnosticStatus
 from geometry_msgs.msg import PoseStamped, TwistStamped
 from nav_msgs.msg import Odometry, Path
-from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor, ParameterType,
-                                SetParametersResult)
+from rcl_interfaces.msg import SetParametersResult
 from rclpy.exceptions import ParameterException
 from rclpy.executors import ExternalShutdownException
 from rclpy.node import Node
@@ -37,6 +36,7 @@ from riskbound.planning.settings import PLANNER_SPECS, PlannerSettings, SettingS
 from riskbound.ros import plan_messages
 from riskbound.ros.conversions import quaternion_to_yaw, stamp_to_seconds
 from riskbound.ros.forecast_codec import cloud_to_forecast
+from riskbound.ros.setting_parameters import parameter_descriptor
 
 NODE_NAME = "planner"
 NODE_SPECS = (
@@ -57,8 +57,6 @@ ALL_SPECS = {spec.name: spec for spec in PLANNER_SPECS + NODE_SPECS}
 PLANNER_NAMES = frozenset(spec.name for spec in PLANNER_SPECS)
 WARN_THROTTLE_S = 2.0
 
-_PARAMETER_TYPES = {bool: ParameterType.PARAMETER_BOOL, int: ParameterType.PARAMETER_INTEGER,
-                    float: ParameterType.PARAMETER_DOUBLE, str: ParameterType.PARAMETER_STRING}
 _LEVEL_OK, _LEVEL_WARN, _LEVEL_ERROR = DiagnosticStatus.OK, DiagnosticStatus.WARN, DiagnosticStatus.ERROR
 
 
@@ -68,25 +66,6 @@ class InputProblem(Exception):
     def __init__(self, kind, message):
         super().__init__(message)
         self.kind = kind
-
-
-def parameter_descriptor(spec):
-    """ROS parameter descriptor of a setting: type, description, numeric range, allowed values."""
-    descriptor = ParameterDescriptor(name=spec.name, type=_PARAMETER_TYPES[type(spec.default)],
-                                     description=spec.description, read_only=spec.read_only)
-    if spec.choices is not None:
-        descriptor.additional_constraints = f"must be {spec.allowed()}"
-    elif spec.low is not None and spec.high is not None:
-        # rclpy always accepts the end points of a range; open bounds are rejected by SettingSpec.check.
-        if isinstance(spec.default, float):
-            descriptor.floating_point_range = [FloatingPointRange(from_value=float(spec.low),
-                                                                  to_value=float(spec.high), step=0.0)]
-        else:
-            descriptor.integer_range = [IntegerRange(from_value=int(spec.low), to_value=int(spec.high), step=1)]
-        descriptor.additional_constraints = (f"must be in {spec.allowed()}"
-                                             + (" (round brackets exclude the bound)"
-                                                if spec.low_open or spec.high_open else ""))
-    return descriptor
 
 
 def _finite(*values):
