@@ -92,10 +92,12 @@ def quaternion_xyzw_to_yaw(quaternions):
     atan2(2(wz + xy), 1 − 2(y² + z²)) of the normalised quaternion; NaN where a quaternion is not
     finite or is zero. Vectorised; the tests check it against transforms3d."""
     q = np.asarray(quaternions, dtype=float).reshape(-1, 4)
-    norm = np.linalg.norm(q, axis=1)
-    valid = np.all(np.isfinite(q), axis=1) & (norm > 1e-9)
-    x, y, z, w = (q / np.where(valid, norm, 1.0)[:, None]).T
-    yaw = np.arctan2(2.0 * (w * z + x * y), 1.0 - 2.0 * (y * y + z * z))
+    # Garbage from a damaged file may overflow here; such quaternions come out as NaN anyway.
+    with np.errstate(over="ignore", invalid="ignore"):
+        norm = np.linalg.norm(q, axis=1)
+        valid = np.all(np.isfinite(q), axis=1) & np.isfinite(norm) & (norm > 1e-9)
+        x, y, z, w = (q / np.where(valid, norm, 1.0)[:, None]).T
+        yaw = np.arctan2(2.0 * (w * z + x * y), 1.0 - 2.0 * (y * y + z * z))
     return np.where(valid, yaw, np.nan)
 
 
