@@ -49,10 +49,6 @@ class CrowdRun:
     min_boundary_gap_m: float = float("inf")  # smallest gap between a disc and a wall or obstacle
     group_sizes: dict = field(default_factory=dict)
 
-    @property
-    def times_s(self):
-        return np.array([frame.time_s for frame in self.frames])
-
 
 class _Crowd:
     """Mutable walker state of one run (arrays grow and shrink as walkers come and go)."""
