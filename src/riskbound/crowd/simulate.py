@@ -5,8 +5,8 @@ Deterministic for a seed: every random draw comes from one generator in a fixed 
 
 Groups (friends, families) share their route choices, their desired speed and their next target
 point, and a spring pulls a member back towards the group's centre when it strays further than
-`GROUP_SPREAD_M`. The 1995 model has attraction terms but gives no values for them; this spring
-and its constants are our own choice.
+`GROUP_SPREAD_M`. The attraction terms of the 1995 model are not used; this spring and its
+constants are our own choice, no source.
 """
 
 from dataclasses import dataclass, field
@@ -263,6 +263,8 @@ class _Crowd:
 
 def simulate(scenario, seed, duration_s=None, rate_hz=10.0, params=None, progress=None):
     """Simulate `scenario` and return a CrowdRun with frames at `rate_hz`.
+
+    seed: an int, a numpy SeedSequence or Generator; the same seed gives the same run.
 
     Time zero is the start of the warm-up; frames cover [warmup_s, warmup_s + duration_s].
     `progress(fraction)` is called now and then with the share of simulated time done.
