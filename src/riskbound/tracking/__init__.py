@@ -1,0 +1,1 @@
+"""Obstacle tracking: Kalman filters per track, gated association, track lifecycle and forecasts."""
