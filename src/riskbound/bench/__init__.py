@@ -12,6 +12,7 @@ BENCHMARKS = {
     "planner": "riskbound.bench.planner",
     "compare": "riskbound.bench.compare",
     "faults": "riskbound.bench.faults",
+    "tracker": "riskbound.bench.tracker",
 }
 
 

@@ -53,16 +53,17 @@ def wrap_angle(angle):
 
 
 def _sinc(a):
-    """sin(a)/a with its limit 1 at a = 0."""
-    return np.sinc(a / np.pi)
+    """sin(a)/a with its limit 1 at a = 0 (no cancellation near 0: both factors are exact)."""
+    a = np.asarray(a, dtype=float)
+    return np.divide(np.sin(a), a, out=np.ones_like(a), where=a != 0.0)
 
 
 def _sinc_derivative(a):
-    """d/da sin(a)/a = (a cos a − sin a)/a², by its series −a/3 + a³/30 near 0 (cancellation)."""
+    """d/da sin(a)/a = (cos a − sin(a)/a)/a, by its series −a/3 + a³/30 near 0 (cancellation)."""
     a = np.asarray(a, dtype=float)
     small = np.abs(a) < 1e-3
     safe = np.where(small, 1.0, a)
-    return np.where(small, -a / 3.0 + a**3 / 30.0, (safe * np.cos(safe) - np.sin(safe)) / safe**2)
+    return np.where(small, a * (a * a / 30.0 - 1.0 / 3.0), (np.cos(safe) - np.sin(safe) / safe) / safe)
 
 
 def _inverse_2x2(S):
@@ -331,45 +332,66 @@ class UnicycleModel(MotionModel):
 
     def f(self, X, dt):
         """x⁺ = f(x, Δt) for states X (J, 5)."""
-        theta, v, omega = X[:, 2], X[:, 3], X[:, 4]
-        a = 0.5 * omega * dt
-        travel = v * dt * _sinc(a)
-        X_next = X.copy()
-        X_next[:, 0] += travel * np.cos(theta + a)
-        X_next[:, 1] += travel * np.sin(theta + a)
-        X_next[:, 2] = theta + omega * dt
-        return X_next
+        return self.transition(X, dt, with_jacobian=False)[0]
 
     def jacobian(self, X, dt):
         """F = ∂f/∂x (J, 5, 5)."""
-        theta, v, omega = X[:, 2], X[:, 3], X[:, 4]
-        a = 0.5 * omega * dt
-        s, ds = _sinc(a), _sinc_derivative(a)
-        c, sn = np.cos(theta + a), np.sin(theta + a)
-        F = np.broadcast_to(np.eye(5), (len(X), 5, 5)).copy()
-        F[:, 0, 2] = -v * dt * s * sn
-        F[:, 0, 3] = dt * s * c
-        F[:, 0, 4] = v * dt * 0.5 * dt * (ds * c - s * sn)
-        F[:, 1, 2] = v * dt * s * c
-        F[:, 1, 3] = dt * s * sn
-        F[:, 1, 4] = v * dt * 0.5 * dt * (ds * sn + s * c)
-        F[:, 2, 4] = dt
-        return F
+        return self.transition(X, dt)[1]
 
-    def transition(self, X, dt):
-        return self.f(X, dt), self.jacobian(X, dt)
+    def transition(self, X, dt, with_jacobian=True):
+        """f(X, Δt) and, sharing its trigonometry, F = ∂f/∂x (J, 5, 5) (None when not with_jacobian).
+
+        Δt is a number or one interval per state (J,).
+        """
+        theta, v, omega = X[:, 2], X[:, 3], X[:, 4]
+        a = 0.5 * dt * omega
+        s = _sinc(a)
+        c, sn = np.cos(theta + a), np.sin(theta + a)
+        vs_dt = v * dt * s
+        X_next = X.copy()
+        X_next[:, 0] += vs_dt * c
+        X_next[:, 1] += vs_dt * sn
+        X_next[:, 2] = theta + omega * dt
+        if not with_jacobian:
+            return X_next, None
+        ds_term = (0.5 * dt * dt) * v * _sinc_derivative(a)
+        F = np.zeros((len(X), 5, 5))
+        F.reshape(len(X), 25)[:, ::6] = 1.0
+        F[:, 0, 2] = -vs_dt * sn
+        F[:, 1, 2] = vs_dt * c
+        F[:, 0, 3] = dt * s * c
+        F[:, 1, 3] = dt * s * sn
+        F[:, 0, 4] = ds_term * c - 0.5 * dt * vs_dt * sn
+        F[:, 1, 4] = ds_term * sn + 0.5 * dt * vs_dt * c
+        F[:, 2, 4] = dt
+        return X_next, F
+
+    def mean_at(self, X, offsets_s):
+        """Noise-free states (J, S, 5) at each offset (S,) after X (J, 5).
+
+        The constant-turn step is exact for any Δt, so f(x, t_k) in one step equals k steps of
+        t_k/k: all offsets are evaluated in one batched call.
+        """
+        J, S = len(X), len(offsets_s)
+        states = self.transition(np.repeat(X, S, axis=0), np.tile(offsets_s, J), with_jacobian=False)[0]
+        return self.normalise(states).reshape(J, S, 5)
 
     def process_noise(self, X, dt):
         """Q = σ_a² Γ_a Γ_aᵀ + σ_α² Γ_α Γ_αᵀ (J, 5, 5) for an interval of length |Δt|."""
         dt = abs(float(dt))
-        theta = X[:, 2]
-        G_a = np.zeros((len(X), 5))
-        G_a[:, 0] = 0.5 * dt**2 * np.cos(theta)
-        G_a[:, 1] = 0.5 * dt**2 * np.sin(theta)
-        G_a[:, 3] = dt
-        G_alpha = np.array([0.0, 0.0, 0.5 * dt**2, 0.0, dt])
-        return (self.accel_noise_mps2**2 * np.einsum("ji,jk->jik", G_a, G_a)
-                + self.turn_noise_radps2**2 * np.outer(G_alpha, G_alpha))
+        half_dt2 = 0.5 * dt * dt
+        G_a = np.empty((len(X), 3))
+        G_a[:, 0] = half_dt2 * np.cos(X[:, 2])
+        G_a[:, 1] = half_dt2 * np.sin(X[:, 2])
+        G_a[:, 2] = dt
+        Q = np.zeros((len(X), 5, 5))
+        # Γ_a has no heading or turn-rate entries: fill only its (x, y, v) block.
+        Q[:, [[0], [1], [3]], [0, 1, 3]] = self.accel_noise_mps2**2 * G_a[:, :, None] * G_a[:, None, :]
+        turn = self.turn_noise_radps2**2
+        Q[:, 2, 2] = turn * half_dt2**2
+        Q[:, 2, 4] = Q[:, 4, 2] = turn * half_dt2 * dt
+        Q[:, 4, 4] = turn * dt * dt
+        return Q
 
     def normalise(self, X):
         X[:, 2] = wrap_angle(X[:, 2])

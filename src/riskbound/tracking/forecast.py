@@ -10,7 +10,9 @@ For the linear constant-velocity model this has a closed form evaluated for all 
 at once (the hot path): with F(t) = [[I, t I], [0, I]] and Q̄_k = Σ_{i<k} F(iΔ) Q(Δ) F(iΔ)ᵀ
 (the same for every track, computed once per grid),
     p_k = p + t_k v,   P_pos,k = P_pp + t_k (P_pv + P_vp) + t_k² P_vv + Q̄_k[pos].
-The unicycle is propagated step by step with its Jacobians, batched over tracks.
+The unicycle's mean is evaluated at every step in one call (its step is exact for any interval);
+its covariance is propagated step by step with the Jacobians along that mean, batched over
+tracks.
 """
 
 import numpy as np
@@ -71,12 +73,18 @@ class TrackForecaster:
         return positions, covariances
 
     def _stepwise(self, X, P):
-        J, S = len(X), self.steps + 1
-        states = np.empty((J, S, X.shape[1]))
+        J, S, n = len(X), self.steps + 1, X.shape[1]
+        states = self.model.mean_at(X, self.times)
+        # Jacobians and process noise of every step at once, at the state where the step starts;
+        # only the covariance recursion itself is sequential.
+        starts = states[:, :-1].reshape(-1, n)
+        _, F = self.model.transition(starts, self.step_s)
+        Q = self.model.process_noise(starts, self.step_s)
+        F, Q = F.reshape(J, S - 1, n, n), Q.reshape(J, S - 1, n, n)
         covariances = np.empty((J, S, 2, 2))
-        x, p = X.copy(), P.copy()
-        states[:, 0], covariances[:, 0] = x, p[:, :2, :2]
-        for k in range(1, S):
-            x, p = self.model.predict(x, p, self.step_s)
-            states[:, k], covariances[:, k] = x, p[:, :2, :2]
+        covariances[:, 0] = P[:, :2, :2]
+        p = P
+        for k in range(S - 1):
+            p = F[:, k] @ p @ np.swapaxes(F[:, k], -1, -2) + Q[:, k]
+            covariances[:, k + 1] = p[:, :2, :2]
         return states[..., :2].copy(), covariances, states[..., self.model.heading_index].copy()
