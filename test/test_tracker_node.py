@@ -79,10 +79,6 @@ class Driver:
             msg.poses.append(pose)
         self.pub.publish(msg)
 
-    def forecast_count(self):
-        with self.lock:
-            return len(self.forecasts)
-
     def latest_forecast(self):
         with self.lock:
             return self.forecasts[-1] if self.forecasts else None
@@ -165,7 +161,9 @@ def test_tracker_node_forecasts_walkers_and_survives_bad_input(tracker_process, 
 
     # Markers: cleared, then an ellipse and an id per track, a forecast line per confirmed track.
     driver.publish(START_S + 1.5, walkers_at(1.5))
-    markers = wait_for(lambda: driver.markers and driver.markers[-1], 10.0, "track markers")
+    markers = wait_for(lambda: driver.markers and abs(stamp_to_seconds(driver.markers[-1].markers[0].header.stamp)
+                                                      - (START_S + 1.5)) < 1e-6 and driver.markers[-1],
+                       10.0, "track markers of the last scan")
     assert markers.markers[0].action == Marker.DELETEALL
     namespaces = [m.ns for m in markers.markers[1:]]
     assert namespaces.count("track_covariance") == namespaces.count("track_id") == 2
@@ -177,11 +175,10 @@ def test_tracker_node_forecasts_walkers_and_survives_bad_input(tracker_process, 
     driver.publish(START_S + 1.6, np.vstack([walkers_at(1.6), [[np.nan, 1.0]]]))
     driver.publish(START_S + 1.7, walkers_at(1.7), frame="map")
     driver.publish(START_S + 1.0, walkers_at(1.0))
-    count = driver.forecast_count()
     driver.publish(START_S + 1.8, np.zeros((0, 2)))
-    aged = wait_for(lambda: driver.forecast_count() > count and driver.latest_forecast(), 10.0,
+    aged = wait_for(lambda: (m := driver.latest_forecast()) is not None
+                    and abs(stamp_to_seconds(m.header.stamp) - (START_S + 1.8)) < 1e-6 and m, 10.0,
                     "a forecast after an empty scan")
-    assert stamp_to_seconds(aged.header.stamp) == pytest.approx(START_S + 1.8)
     assert cloud_to_forecast(aged).track_count == 2
     driver.publish(START_S - 100.0, walkers_at(0.0))
     wait_for(lambda: "time went backwards" in node_log(log_path), 10.0, "the reset warning")
@@ -194,8 +191,9 @@ def test_tracker_node_forecasts_walkers_and_survives_bad_input(tracker_process, 
     # Parameters: invalid values are refused with the parameter's allowed range (an open bound and
     # a bound set by another parameter: both beyond what the descriptor's range can say), a valid
     # one applies.
-    for name, value, reason in (("gate_probability", 1.0, "gate_probability=1.0 is out of range: must be in [0.5, 1.0)"),
-                                ("confirm_hits", 5, "confirm_hits=5 is out of range: must be in [1, confirm_window=3]")):
+    for name, value, reason in (
+            ("gate_probability", 1.0, "gate_probability=1.0 is out of range: must be in [0.5, 1.0)"),
+            ("confirm_hits", 5, "confirm_hits=5 is out of range: must be in [1, confirm_window=3]")):
         future = driver.params.set_parameters([Parameter(name, value=value)])
         result = wait_for(lambda: future.done() and future.result(), 10.0, "set_parameters").results[0]
         assert not result.successful and reason in result.reason

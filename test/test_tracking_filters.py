@@ -42,7 +42,8 @@ def test_steady_state_gain_equals_alpha_beta_gains(accel, position, dt):
 
 
 def test_process_noise_is_the_discrete_white_noise_acceleration_model():
-    # Reference: same book, §6.3.2: Q = σ² [[T⁴/4, T³/2], [T³/2, T²]] per axis.
+    # Reference: same book, §6.3.2 (section number from memory):
+    # Q = σ² [[T⁴/4, T³/2], [T³/2, T²]] per axis.
     model, dt = cv_model(accel=0.7), 0.1
     per_axis = 0.7**2 * np.array([[dt**4 / 4, dt**3 / 2], [dt**3 / 2, dt**2]])
     Q = model.Q(dt)

@@ -26,7 +26,7 @@ def _walkers(model_name, seed=0, count=6, scans=40):
 def test_linear_forecast_equals_an_independent_numpy_propagation():
     # Reference: the Kalman prediction P_{k+1} = F P_k Fᵀ + Q iterated step by step with F and the
     # discrete white-noise acceleration Q written out here (Estimation with Applications to
-    # Tracking and Navigation (2001), §6.3.2), x_{k+1} = F x_k.
+    # Tracking and Navigation (2001), §6.3.2, section number from memory), x_{k+1} = F x_k.
     rng = np.random.default_rng(11)
     sigma, dt, steps = 0.9, 0.1, 20
     model = ConstantVelocityModel(accel_noise_mps2=sigma, position_noise_m=0.1, heading_noise_rad=0.3,

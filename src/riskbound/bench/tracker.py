@@ -144,7 +144,8 @@ def _plot(samples, path):
     bins = np.linspace(0.0, upper, 60)
     for model, values in samples.items():
         ax.hist(np.clip(values, 0, upper), bins=bins, histtype="step", linewidth=1.5, label=model)
-    ax.axvline(TARGET_MEDIAN_MS, color="grey", linestyle="--", linewidth=1, label=f"target median {TARGET_MEDIAN_MS} ms")
+    ax.axvline(TARGET_MEDIAN_MS, color="grey", linestyle="--", linewidth=1,
+               label=f"target median {TARGET_MEDIAN_MS} ms")
     ax.set_xlabel("update + forecast per scan [ms]")
     ax.set_ylabel("scans")
     ax.set_title("tracker time per scan")

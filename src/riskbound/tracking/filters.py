@@ -13,8 +13,8 @@ measurement matrix, R measurement noise covariance, y innovation, S its covarian
     update       y = z − H x⁻            S = H P⁻ Hᵀ + R                K = P⁻ Hᵀ S⁻¹
                  x = x⁻ + K y            P = (I − K H) P⁻ (I − K H)ᵀ + K R Kᵀ
 
-The covariance update is the Joseph form (filterpy's too): it keeps P symmetric positive
-semi-definite under rounding. Measurements are positions, plus the heading when the detection
+The covariance update in this form (filterpy's too, rather than P = (I − K H) P⁻) keeps P
+symmetric positive semi-definite under rounding. Measurements are positions, plus the heading when the detection
 carries a valid orientation and the model has a heading state; heading innovations are wrapped
 to [−π, π).
 
