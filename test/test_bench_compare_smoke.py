@@ -11,10 +11,13 @@ import sys
 SUITE_KEYS = ("solve_ms_median", "solve_ms_p90", "speedup_vs_mixed_integer", "cost_gap_mean", "cost_gap_median",
               "cost_gap_p90", "success_rate", "collision_probability_mean", "collision_probability_max", "stuck")
 CROWD_KEYS = ("episodes", "success_rate", "collision_rate", "collisions_while_stopped", "stuck", "solve_ms_median",
-              "solve_ms_p90", "failed_solve_fraction", "collision_probability_mean", "collision_probability_max")
-PRUNING_KEYS = ("walkers_low", "walkers_high", "solve_ms_median_low", "solve_ms_median_high", "ratio")
-TARGETS = ("speedup_vs_mixed_integer", "cost_gap_mean", "collision_probability_max", "crowd_success_vs_linearised",
-           "pruning_ratio")
+              "solve_ms_p90", "failed_solve_fraction", "collision_probability_mean", "collision_probability_max",
+              "collision_probability_max_considered", "plans_above_alpha")
+PRUNING_KEYS = ("walkers_low", "walkers_high", "solve_ms_median_low", "solve_ms_median_high", "ratio",
+                "solve_ms_median_high_far", "ratio_far")
+TARGETS = ("speedup_vs_mixed_integer", "cost_gap_mean", "collision_probability_max",
+           "collision_probability_max_considered", "crowd_success_vs_linearised", "pruning_ratio",
+           "pruning_ratio_far_walkers")
 
 
 def _finite(value):
@@ -63,12 +66,14 @@ def test_quick_compare_writes_table_json_and_plots(tmp_path):
                 assert _finite(figures[key]), (method, size, key)
             assert figures["success_rate"] + figures["collision_rate"] <= 1.0 + 1e-12
             assert 0.0 <= figures["collision_probability_max"] <= 1.0
+            assert 0.0 <= figures["collision_probability_max_considered"] <= 1.0
 
     pruning = report["pruning"]
     for key in PRUNING_KEYS:
         assert _finite(pruning[key]), key
     assert (pruning["walkers_low"], pruning["walkers_high"]) == (40, 200)
     assert math.isclose(pruning["ratio"], pruning["solve_ms_median_high"] / pruning["solve_ms_median_low"])
+    assert math.isclose(pruning["ratio_far"], pruning["solve_ms_median_high_far"] / pruning["solve_ms_median_low"])
 
     assert report["alpha"] == 0.05
     for name in TARGETS:

@@ -9,7 +9,9 @@ Methods (same robot model, cost, forecasts, pruning and per-constraint risk wher
 Suite (a), open loop: random single-obstacle instances (start speed, goal, obstacle box, heading,
 velocity, initial and growth covariance of the obstacle, robot covariance). Every method plans once
 from a cold start. The mixed-integer plan is the reference optimum of the disjunctive problem; the
-cost gap of a method is cost / cost_mixed_integer − 1 on the instances both solved.
+cost gap of a method is cost / cost_mixed_integer − 1 on the instances both solved. A method is
+"stuck" on an instance when it returns no usable plan, or a plan ending with less than half the
+progress towards the goal that the mixed-integer plan makes (it stopped in front of the obstacle).
 
 Suite (b), closed loop: our own invented scene, a station concourse (30 m × 20 m hall) with
 constant-velocity walkers, 60 % in the two commuter streams along the hall and the rest crossing
@@ -35,10 +37,10 @@ success_rates.png. JSON keys:
     cost_gap_mean_where_obstacle_active, success_rate, collision_probability_mean,
     collision_probability_max, stuck}}, obstacle_active_instances, cost_gaps{<m>[...]}},
     crowd{sizes, seeds, methods{<m>{<size>{episodes, success_rate, collision_rate,
-    collisions_while_stopped, stuck,
-    solve_ms_median, solve_ms_p90, failed_solve_fraction, collision_probability_mean,
-    collision_probability_max}}}}, pruning{walkers_low, walkers_high, solve_ms_median_low,
-    solve_ms_median_high, ratio}, targets{<name>{target, measured, met}}, wall_time_s
+    collisions_while_stopped, stuck, solve_ms_median, solve_ms_p90, failed_solve_fraction,
+    collision_probability_mean, collision_probability_max, collision_probability_max_considered,
+    plans_above_alpha}}}}, pruning{walkers_low, walkers_high, solve_ms_median_low,
+    solve_ms_median_high, ratio, solve_ms_median_high_far, ratio_far}, targets{<name>{target, measured, met}}, wall_time_s
 Figures that cannot be computed (for example a cost gap when no instance was solved by both
 methods) are written as null.
 """
@@ -72,6 +74,8 @@ WALKER_SPEED_MPS = (1.3, 0.2, 0.6, 1.8)
 WALKER_HALF_LENGTH_M = (0.15, 0.25)
 WALKER_HALF_WIDTH_M = (0.22, 0.3)
 SUBSTEPS = 5
+# The hall of the far walkers lies this far to the side of the concourse [m].
+FAR_HALL_OFFSET_M = 60.0
 GOAL_TOLERANCE_M = 0.3
 # A plan that ends with less than this share of the mixed-integer plan's progress stopped short.
 STUCK_PROGRESS_SHARE = 0.5
@@ -114,6 +118,14 @@ def plan_collision_probability(states, inputs, P0, forecast, settings, model, rn
     across = -relative[..., 0] * s + relative[..., 1] * c
     inside = (np.abs(along) < grown[near, None, 0]) & (np.abs(across) < grown[near, None, 1])
     return float(np.mean(inside.any(axis=(1, 2))))
+
+
+def considered_only(forecast, constraints):
+    """The part of `forecast` a planner constrained this cycle (its obstacle slots in use)."""
+    ids = set(int(i) for i in constraints.track_ids[: constraints.considered])
+    keep = np.array([int(i) in ids for i in forecast.track_ids], dtype=bool)
+    return ObstacleForecast(forecast.track_ids[keep], forecast.times, forecast.positions[keep],
+                            forecast.headings[keep], forecast.covariances[keep], forecast.half_extents[keep])
 
 
 def disc_box_distance(point, centres, headings, half_extents):
@@ -287,6 +299,8 @@ class Concourse:
     start: tuple = (-8.0, 0.0)
     goal: tuple = (8.0, 0.0)
     clear_m: float = 2.5
+    clear_s: float = 3.0
+    far_walkers: int = 0
     position_sigma_m: float = 0.08
     velocity_sigma_mps: float = 0.12
     time_limit_s: float = 35.0
@@ -294,27 +308,39 @@ class Concourse:
 
 
 class ConcourseWalkers:
-    """Ground truth: constant-velocity walkers wrapping around at the hall's walls."""
+    """Ground truth: constant-velocity walkers wrapping around at the hall's walls.
+
+    No walker starts within `clear_m` of the robot's start or goal, nor on a course that brings it
+    within `clear_m` of the start during the first `clear_s` (a collision nobody could avoid).
+    `far_walkers` extra walkers use a second, identical hall `FAR_HALL_OFFSET_M` to the side: they
+    are in every forecast but never within the robot's reach (they isolate the cost of pruning).
+    """
 
     def __init__(self, scene):
         self.scene = scene
         rng = np.random.default_rng(scene.seed)
-        J = scene.walkers
+        J = scene.walkers + scene.far_walkers
         L, W = scene.half_length_m, scene.half_width_m
-        positions = np.zeros((J, 2))
-        for j in range(J):
-            while True:
-                p = rng.uniform([-L, -W], [L, W])
-                if min(np.linalg.norm(p - scene.start), np.linalg.norm(p - scene.goal)) > scene.clear_m:
-                    positions[j] = p
-                    break
         mean, sd, low, high = WALKER_SPEED_MPS
         speed = np.clip(rng.normal(mean, sd, J), low, high)
         stream = rng.random(J) < scene.stream_share
         course = np.where(stream, np.where(rng.random(J) < 0.5, 0.0, np.pi) + rng.normal(0.0, 0.15, J),
                           rng.uniform(-np.pi, np.pi, J))
+        velocities = speed[:, None] * np.stack([np.cos(course), np.sin(course)], axis=-1)
+        self.hall_y = np.where(np.arange(J) < scene.walkers, 0.0, FAR_HALL_OFFSET_M)
+        start, goal = np.asarray(scene.start), np.asarray(scene.goal)
+        early = np.linspace(0.0, scene.clear_s, 16)
+        positions = np.zeros((J, 2))
+        for j in range(J):
+            while True:
+                p = rng.uniform([-L, -W], [L, W]) + [0.0, self.hall_y[j]]
+                path = p[None, :] + early[:, None] * velocities[j][None, :]
+                if (np.linalg.norm(path - start, axis=1).min() > scene.clear_m
+                        and np.linalg.norm(p - goal) > scene.clear_m):
+                    positions[j] = p
+                    break
         self.positions = positions
-        self.velocities = speed[:, None] * np.stack([np.cos(course), np.sin(course)], axis=-1)
+        self.velocities = velocities
         self.headings = course
         self.half_extents = np.stack([rng.uniform(*WALKER_HALF_LENGTH_M, J), rng.uniform(*WALKER_HALF_WIDTH_M, J)],
                                      axis=-1)
@@ -323,7 +349,7 @@ class ConcourseWalkers:
         L, W = self.scene.half_length_m, self.scene.half_width_m
         p = self.positions + dt * self.velocities
         p[:, 0] = (p[:, 0] + L) % (2 * L) - L
-        p[:, 1] = (p[:, 1] + W) % (2 * W) - W
+        p[:, 1] = (p[:, 1] - self.hall_y + W) % (2 * W) - W + self.hall_y
         self.positions = p
 
     def forecast(self, rng, times):
@@ -363,7 +389,7 @@ def run_episode(planner, settings, scene, mc_samples, collision_check=True):
         x = np.array([*scene.start, 0.0, 0.0])
     P0 = np.diag([0.02**2, 0.02**2, 0.05**2, 0.05**2])
     planner.reset()
-    solve_ms, probabilities, failures = [], [], 0
+    solve_ms, probabilities, probabilities_considered, failures = [], [], [], 0
     outcome, cycles = "stuck", int(round(scene.time_limit_s / dt))
     hit_while_stopped = False
     for _ in range(cycles):
@@ -373,8 +399,15 @@ def run_episode(planner, settings, scene, mc_samples, collision_check=True):
         if result.success:
             u = result.inputs[0]
             if mc_samples:
-                probabilities.append(plan_collision_probability(result.states, result.inputs, P0, forecast,
-                                                                settings, model, mc_rng, mc_samples))
+                probability = plan_collision_probability(result.states, result.inputs, P0, forecast,
+                                                         settings, model, mc_rng, mc_samples)
+                probabilities.append(probability)
+                # With obstacles dropped by the slot cap, α covers only the ones constrained.
+                if result.obstacles_dropped:
+                    probability = plan_collision_probability(
+                        result.states, result.inputs, P0, considered_only(forecast, result.constraints),
+                        settings, model, mc_rng, mc_samples)
+                probabilities_considered.append(probability)
         else:
             failures += 1
             u = _brake(model, x, settings)
@@ -397,6 +430,7 @@ def run_episode(planner, settings, scene, mc_samples, collision_check=True):
             break
     return {"outcome": outcome, "hit_while_stopped": hit_while_stopped, "solve_ms": solve_ms,
             "collision_probabilities": probabilities,
+            "collision_probabilities_considered": probabilities_considered,
             "failures": failures, "cycles": len(solve_ms)}
 
 
@@ -415,13 +449,14 @@ def run_crowds(settings, sizes, seeds, sigma_multiple, mc_samples, scene_options
     return results
 
 
-def summarise_crowds(results):
+def summarise_crowds(results, alpha):
     summary = {}
     for method, by_size in results.items():
         summary[method] = {}
         for size, episodes in by_size.items():
             solve_ms = np.concatenate([e["solve_ms"] for e in episodes])
             probability = np.concatenate([e["collision_probabilities"] for e in episodes] + [np.zeros(0)])
+            considered = np.concatenate([e["collision_probabilities_considered"] for e in episodes] + [np.zeros(0)])
             outcomes = [e["outcome"] for e in episodes]
             summary[method][str(size)] = {
                 "episodes": len(episodes),
@@ -433,23 +468,31 @@ def summarise_crowds(results):
                 "failed_solve_fraction": float(sum(e["failures"] for e in episodes) / max(len(solve_ms), 1)),
                 "collision_probability_mean": float(np.mean(probability)) if len(probability) else 0.0,
                 "collision_probability_max": float(np.max(probability)) if len(probability) else 0.0,
+                "collision_probability_max_considered": float(np.max(considered)) if len(considered) else 0.0,
+                "plans_above_alpha": int(np.sum(probability > alpha)),
             }
     return summary
 
 
 def run_pruning(settings, low, high, seeds, scene_options, log):
-    """Median solve ms of our planner at `low` and `high` walkers, closed loop, same scene otherwise."""
+    """Our median solve ms with `low` and `high` walkers: in the same hall (five times the local
+    density at 200 vs 40) and with the extra walkers in a far hall (only the pruning work grows)."""
     planner = make_planner("ours", settings, 3.0)
-    medians = {}
-    for walkers in (low, high):
+
+    def median_ms(walkers, far_walkers):
         solve_ms = []
         for seed in range(seeds):
-            episode = run_episode(planner, settings, Concourse(walkers, seed, **scene_options), 0)
-            solve_ms.extend(episode["solve_ms"])
-        medians[walkers] = float(np.median(solve_ms))
-        log(f"pruning: {walkers} walkers, median solve {medians[walkers]:.1f} ms over {len(solve_ms)} cycles")
-    return {"walkers_low": low, "walkers_high": high, "solve_ms_median_low": medians[low],
-            "solve_ms_median_high": medians[high], "ratio": medians[high] / medians[low]}
+            scene = Concourse(walkers, seed, far_walkers=far_walkers, **scene_options)
+            solve_ms.extend(run_episode(planner, settings, scene, 0)["solve_ms"])
+        median = float(np.median(solve_ms))
+        log(f"pruning: {walkers} walkers in the hall + {far_walkers} far away, median solve {median:.1f} ms "
+            f"over {len(solve_ms)} cycles")
+        return median
+
+    at_low, same_hall, far = median_ms(low, 0), median_ms(high, 0), median_ms(low, high - low)
+    return {"walkers_low": low, "walkers_high": high, "solve_ms_median_low": at_low,
+            "solve_ms_median_high": same_hall, "ratio": same_hall / at_low,
+            "solve_ms_median_high_far": far, "ratio_far": far / at_low}
 
 
 # --- report --------------------------------------------------------------------------------------
@@ -460,6 +503,9 @@ def evaluate_targets(suite, crowd, pruning, alpha):
     crowd_lin = [crowd["linearised"][size]["success_rate"] for size in crowd["linearised"]]
     probability_max = max([ours["collision_probability_max"]]
                           + [crowd["ours"][size]["collision_probability_max"] for size in crowd["ours"]])
+    probability_considered = max([ours["collision_probability_max"]]
+                                 + [crowd["ours"][size]["collision_probability_max_considered"]
+                                    for size in crowd["ours"]])
     return {
         "speedup_vs_mixed_integer": {"target": TARGET_SPEEDUP, "measured": ours["speedup_vs_mixed_integer"],
                                      "met": bool(ours["speedup_vs_mixed_integer"] >= TARGET_SPEEDUP)},
@@ -467,10 +513,14 @@ def evaluate_targets(suite, crowd, pruning, alpha):
                           "met": bool(ours["cost_gap_mean"] <= TARGET_COST_GAP)},
         "collision_probability_max": {"target": alpha, "measured": probability_max,
                                       "met": bool(probability_max <= alpha)},
+        "collision_probability_max_considered": {"target": alpha, "measured": probability_considered,
+                                                 "met": bool(probability_considered <= alpha)},
         "crowd_success_vs_linearised": {"target": float(np.mean(crowd_lin)), "measured": float(np.mean(crowd_ours)),
                                         "met": bool(all(o >= li for o, li in zip(crowd_ours, crowd_lin)))},
         "pruning_ratio": {"target": TARGET_PRUNING_RATIO, "measured": pruning["ratio"],
                           "met": bool(pruning["ratio"] <= TARGET_PRUNING_RATIO)},
+        "pruning_ratio_far_walkers": {"target": TARGET_PRUNING_RATIO, "measured": pruning["ratio_far"],
+                                      "met": bool(pruning["ratio_far"] <= TARGET_PRUNING_RATIO)},
     }
 
 
@@ -493,23 +543,32 @@ def markdown(report):
                      f"{100 * m['success_rate']:.0f} % | {m['collision_probability_mean']:.4f} | "
                      f"{m['collision_probability_max']:.4f} | {m['stuck']} |")
     lines += ["", f"## (b) Station concourse, closed loop: {crowd['seeds']} seeds per size", "",
+              "P(coll.) over all walkers; \"considered\": over the walkers the planner constrained that "
+              "cycle (they differ when the slot cap drops reachable walkers).", "",
               "| method | walkers | success | collisions (robot stopped) | stuck | median ms | p90 ms "
-              "| failed solves | P(coll.) mean | P(coll.) max |", "|---|---|---|---|---|---|---|---|---|---|"]
+              "| failed solves | P(coll.) mean | P(coll.) max | max, considered | plans > α |",
+              "|---|---|---|---|---|---|---|---|---|---|---|---|"]
     for method, by_size in crowd["methods"].items():
         for size, m in by_size.items():
             lines.append(f"| {LABELS[method]} | {size} | {100 * m['success_rate']:.0f} % | "
                          f"{100 * m['collision_rate']:.0f} % ({m['collisions_while_stopped']}) | {m['stuck']} | "
                          f"{m['solve_ms_median']:.1f} | "
                          f"{m['solve_ms_p90']:.1f} | {100 * m['failed_solve_fraction']:.1f} % | "
-                         f"{m['collision_probability_mean']:.4f} | {m['collision_probability_max']:.4f} |")
+                         f"{m['collision_probability_mean']:.4f} | {m['collision_probability_max']:.4f} | "
+                         f"{m['collision_probability_max_considered']:.4f} | {m['plans_above_alpha']} |")
     lines += ["", "Mixed-integer: not run in closed loop (one cycle takes seconds, see (a)).", "",
-              f"## Pruning: our median solve {pruning['solve_ms_median_high']:.1f} ms at "
-              f"{pruning['walkers_high']} walkers vs {pruning['solve_ms_median_low']:.1f} ms at "
-              f"{pruning['walkers_low']} (ratio {pruning['ratio']:.2f})", "", "## Targets", "",
+              f"## Pruning: our median solve ms at {pruning['walkers_high']} vs {pruning['walkers_low']} walkers",
+              "", f"- same hall (local density ×{pruning['walkers_high'] / pruning['walkers_low']:g}): "
+              f"{pruning['solve_ms_median_high']:.1f} ms vs {pruning['solve_ms_median_low']:.1f} ms, "
+              f"ratio {pruning['ratio']:.2f}",
+              f"- {pruning['walkers_low']} in the hall + {pruning['walkers_high'] - pruning['walkers_low']} "
+              f"out of reach (pruning work only): {pruning['solve_ms_median_high_far']:.1f} ms, "
+              f"ratio {pruning['ratio_far']:.2f}", "", "## Targets", "",
               "| target | wanted | measured | met |", "|---|---|---|---|"]
     wanted = {"speedup_vs_mixed_integer": "≥ {:.0f}×", "cost_gap_mean": "≤ {:.0%}",
-              "collision_probability_max": "≤ {:g}", "crowd_success_vs_linearised": "≥ linearised ({:.0%} mean)",
-              "pruning_ratio": "≤ {:.1f}"}
+              "collision_probability_max": "≤ {:g}", "collision_probability_max_considered": "≤ {:g}",
+              "crowd_success_vs_linearised": "≥ linearised, every size ({:.0%} mean)",
+              "pruning_ratio": "≤ {:.1f}", "pruning_ratio_far_walkers": "≤ {:.1f}"}
     for name, t in report["targets"].items():
         lines.append(f"| {name} | {wanted[name].format(t['target'])} | {t['measured']:.4g} | "
                      f"{'yes' if t['met'] else 'NO'} |")
@@ -579,7 +638,7 @@ def add_arguments(parser):
                         help="smoke size: 2 instances with a 12-step horizon in suite (a), crowds of 10 and 40 "
                              "walkers on a 6 m route with 1 seed, fewer Monte Carlo samples")
     parser.add_argument("--instances", type=int, default=None, help="suite (a) instances (default 50, quick 2)")
-    parser.add_argument("--seeds", type=int, default=None, help="crowd seeds per size (default 5, quick 1)")
+    parser.add_argument("--seeds", type=int, default=None, help="crowd seeds per size (default 8, quick 1)")
     parser.add_argument("--sizes", type=int, nargs="+", default=None,
                         help="crowd sizes in walkers (default 10 40 100, quick 10 40)")
     parser.add_argument("--pruning-walkers", type=int, nargs=2, default=[40, 200], metavar=("LOW", "HIGH"),
@@ -611,7 +670,7 @@ def run(args):
     started = time.perf_counter()
     quick = args.quick
     instances = args.instances or (2 if quick else 50)
-    seeds = args.seeds or (1 if quick else 5)
+    seeds = args.seeds or (1 if quick else 8)
     sizes = args.sizes or ([10, 40] if quick else [10, 40, 100])
     mc_samples_suite, mc_samples_crowd = (2000, 300) if quick else (20000, 2000)
     scene_options = {"start": (-3.0, 0.0), "goal": (3.0, 0.0), "time_limit_s": 10.0} if quick else {}
@@ -631,7 +690,7 @@ def run(args):
     log(f"suite (b): concourse with {sizes} walkers, {seeds} seeds, methods {', '.join(CROWD_METHODS)}")
     crowd_results = run_crowds(settings, sizes, seeds, args.sigma_multiple, mc_samples_crowd,
                                scene_options, log)
-    crowd = {"sizes": list(sizes), "seeds": seeds, "methods": summarise_crowds(crowd_results)}
+    crowd = {"sizes": list(sizes), "seeds": seeds, "methods": summarise_crowds(crowd_results, settings.risk_level)}
     low, high = args.pruning_walkers
     pruning = run_pruning(settings, low, high, pruning_seeds, pruning_options, log)
     report = {
