@@ -1,0 +1,74 @@
+"""Footprint geometry for the review: clearance between the robot's disc and an obstacle's oriented
+box, and the time until they touch at constant relative velocity.
+
+The robot is a disc of radius r; an obstacle is a box of half-extents (half_length along its
+heading, half_width across) centred on its position. Clearance is the signed distance between the
+two shapes: distance from the disc centre to the box minus r, negative when they overlap (inside
+the box the distance to the box is minus the depth to its nearest face).
+"""
+
+import numpy as np
+
+
+def to_box_frame(offset, heading):
+    """World-frame vectors (..., 2) → the box frame of an obstacle with `heading` (...) [rad]."""
+    c, s = np.cos(heading), np.sin(heading)
+    return np.stack([c * offset[..., 0] + s * offset[..., 1], -s * offset[..., 0] + c * offset[..., 1]], axis=-1)
+
+
+def disc_box_clearance(robot_xy, radius, box_xy, box_heading, half_extents):
+    """Signed clearance [m] between a disc and oriented boxes; all arguments broadcast.
+
+    robot_xy (..., 2), radius scalar or (...), box_xy (..., 2), box_heading (...), half_extents (..., 2).
+    NaN positions give NaN.
+    """
+    local = np.abs(to_box_frame(np.asarray(robot_xy) - np.asarray(box_xy), np.asarray(box_heading)))
+    q = local - half_extents
+    outside = np.sqrt(np.sum(np.maximum(q, 0.0) ** 2, axis=-1))
+    inside = np.minimum(np.max(q, axis=-1), 0.0)
+    return outside + inside - radius
+
+
+def _slab_entry(p, v, half):
+    """Earliest t ≥ 0 at which p + v t is inside the box |x_i| ≤ half_i (inf if never)."""
+    enter, leave = -np.inf, np.inf
+    for i in range(2):
+        if v[i] == 0.0:
+            if abs(p[i]) > half[i]:
+                return np.inf
+            continue
+        t1, t2 = (-half[i] - p[i]) / v[i], (half[i] - p[i]) / v[i]
+        enter, leave = max(enter, min(t1, t2)), min(leave, max(t1, t2))
+    if enter > leave or leave < 0.0:
+        return np.inf
+    return max(enter, 0.0)
+
+
+def _circle_entry(p, v, centre, radius):
+    """Earliest t ≥ 0 at which p + v t is within `radius` of `centre` (inf if never)."""
+    d = p - centre
+    a, b, c = v @ v, d @ v, d @ d - radius**2
+    if c <= 0.0:
+        return 0.0
+    if a == 0.0 or b >= 0.0 or b * b - a * c < 0.0:
+        return np.inf
+    return (-b - np.sqrt(b * b - a * c)) / a
+
+
+def time_to_contact(robot_xy, robot_velocity, radius, box_xy, box_velocity, box_heading, half_extents):
+    """Time [s] until the disc touches the box if both keep their velocities; 0 if they already
+    overlap, inf if they never touch.
+
+    In the box frame the robot centre moves on a ray; the set of centres touching the box is the
+    box grown by r with rounded corners: two rectangles (grown along one axis each) and four
+    corner circles of radius r. The contact time is the earliest entry into any of them.
+    """
+    heading = float(box_heading)
+    p = to_box_frame(np.asarray(robot_xy, dtype=float) - np.asarray(box_xy, dtype=float), heading)
+    v = to_box_frame(np.asarray(robot_velocity, dtype=float) - np.asarray(box_velocity, dtype=float), heading)
+    if not (np.all(np.isfinite(p)) and np.all(np.isfinite(v))):
+        return np.nan
+    hx, hy = float(half_extents[0]), float(half_extents[1])
+    times = [_slab_entry(p, v, (hx + radius, hy)), _slab_entry(p, v, (hx, hy + radius))]
+    times += [_circle_entry(p, v, np.array([sx * hx, sy * hy]), radius) for sx in (-1, 1) for sy in (-1, 1)]
+    return float(min(times))
