@@ -14,6 +14,7 @@ SUBCOMMANDS = {
     "bench": ("riskbound.bench", "benchmarks: planner solve times and others; prints figures, writes JSON/PNG"),
     "param": ("riskbound.ros.param_client", "get, set or list a running node's parameters"),
     "crowd": ("riskbound.crowd.cli", "generate a synthetic crowd bag from a scenario file"),
+    "review": ("riskbound.logs.review.cli", "find near-misses in a recorded bag, explain them, replan them"),
 }
 
 
