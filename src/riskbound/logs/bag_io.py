@@ -34,6 +34,8 @@ from rosbags.rosbag2 import Reader, StoragePlugin, Writer
 from rosbags.rosbag2.errors import WriterError
 from rosbags.typesys import Stores, get_typestore
 
+from riskbound.motion.heading import quaternion_xyzw_to_yaw, yaw_to_quaternion_xyzw
+
 TYPESTORE = get_typestore(Stores.ROS2_HUMBLE)
 STORAGE_FORMATS = ("mcap", "sqlite3")
 
@@ -77,28 +79,6 @@ class BagError(Exception):
 def seconds_to_ns(seconds):
     """Float seconds → integer nanoseconds (rounded, not truncated: 0.3 s must be 300000000 ns)."""
     return int(round(float(seconds) * 1e9))
-
-
-def yaw_to_quaternion_xyzw(yaws):
-    """Planar headings (n,) [rad] → quaternions (n, 4) in ROS order (x, y, z, w): a rotation by
-    ψ about z is (0, 0, sin ψ/2, cos ψ/2). Vectorised; the tests check it against transforms3d."""
-    half = 0.5 * np.asarray(yaws, dtype=float).reshape(-1)
-    zeros = np.zeros_like(half)
-    return np.column_stack([zeros, zeros, np.sin(half), np.cos(half)])
-
-
-def quaternion_xyzw_to_yaw(quaternions):
-    """Quaternions (n, 4) in ROS order → headings (n,) [rad]: the z-y-x yaw
-    atan2(2(wz + xy), 1 − 2(y² + z²)) of the normalised quaternion; NaN where a quaternion is not
-    finite or is zero. Vectorised; the tests check it against transforms3d."""
-    q = np.asarray(quaternions, dtype=float).reshape(-1, 4)
-    # Garbage from a damaged file may overflow here; such quaternions come out as NaN anyway.
-    with np.errstate(over="ignore", invalid="ignore"):
-        norm = np.linalg.norm(q, axis=1)
-        valid = np.all(np.isfinite(q), axis=1) & np.isfinite(norm) & (norm > 1e-9)
-        x, y, z, w = (q / np.where(valid, norm, 1.0)[:, None]).T
-        yaw = np.arctan2(2.0 * (w * z + x * y), 1.0 - 2.0 * (y * y + z * z))
-    return np.where(valid, yaw, np.nan)
 
 
 def _stamp(time_ns):

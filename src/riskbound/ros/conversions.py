@@ -1,24 +1,26 @@
-"""Message conversions shared by the nodes. Quaternions are converted here and only here:
-ROS messages store (x, y, z, w); transforms3d works with (w, x, y, z)."""
+"""Message conversions shared by the nodes. Orientations go through riskbound.motion.heading, the
+one place that converts between headings and ROS (x, y, z, w) quaternions."""
 
 import numpy as np
 from geometry_msgs.msg import Quaternion
-from transforms3d.euler import euler2quat, quat2euler
+
+from riskbound.motion.heading import quaternion_xyzw_to_yaw, yaw_to_quaternion_xyzw
 
 
 def yaw_to_quaternion(yaw):
     """Planar heading [rad] → geometry_msgs/Quaternion (rotation about z)."""
-    w, x, y, z = euler2quat(0.0, 0.0, float(yaw), axes="sxyz")
-    return Quaternion(x=x, y=y, z=z, w=w)
+    x, y, z, w = yaw_to_quaternion_xyzw([yaw])[0]
+    return Quaternion(x=float(x), y=float(y), z=float(z), w=float(w))
 
 
 def quaternion_to_yaw(q):
     """geometry_msgs/Quaternion → heading [rad]; NaN when the quaternion is not finite or is zero."""
-    wxyz = np.array([q.w, q.x, q.y, q.z], dtype=float)
-    norm = np.linalg.norm(wxyz)
-    if not np.all(np.isfinite(wxyz)) or norm < 1e-9:
-        return float("nan")
-    return float(quat2euler(wxyz / norm, axes="sxyz")[2])
+    return float(quaternion_xyzw_to_yaw([[q.x, q.y, q.z, q.w]])[0])
+
+
+def quaternions_to_yaws(quaternions):
+    """Sequence of geometry_msgs/Quaternion → headings (n,) [rad], NaN for invalid ones."""
+    return quaternion_xyzw_to_yaw(np.array([[q.x, q.y, q.z, q.w] for q in quaternions], dtype=float))
 
 
 def stamp_to_seconds(stamp):
