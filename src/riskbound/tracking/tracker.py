@@ -37,12 +37,15 @@ from riskbound.tracking.settings import TrackerSettings
 
 LOGGER = logging.getLogger(__name__)
 
-SCAN_STATUSES = ("updated", "late", "dropped", "reset")
-
-
 @dataclass
 class ScanReport:
-    """What one scan did. detection_track_ids: track id per input row, −1 where not used."""
+    """What one scan did.
+
+    status: "updated" (processed in order), "late" (older than the newest scan, within the
+    tolerance), "dropped" (not used; `reason` says why) or "reset" (time went backwards; the
+    tracker restarted from this scan). detection_track_ids: track id per input row, −1 where the
+    row was not used.
+    """
 
     stamp_s: float
     status: str
@@ -63,7 +66,6 @@ class TrackSnapshot:
     positions: np.ndarray
     position_covariances: np.ndarray
     velocities: np.ndarray
-    headings: np.ndarray
     confirmed: np.ndarray
 
 
@@ -371,6 +373,4 @@ class MultiTargetTracker:
             positions[rows] = X[rows, :2]
             covariances[rows] = P[rows, :2, :2]
             velocities[rows] = model.velocity(X[rows])
-        headings = np.where(np.isfinite(self._heading), self._heading, 0.0)
-        return TrackSnapshot(self._ids.copy(), positions, covariances, velocities, headings,
-                             self.lifecycle.confirmed.copy())
+        return TrackSnapshot(self._ids.copy(), positions, covariances, velocities, self.lifecycle.confirmed.copy())
