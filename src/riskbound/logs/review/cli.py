@@ -17,7 +17,6 @@ from riskbound.logs.bag_io import BagError
 from riskbound.logs.review import events as event_search
 from riskbound.logs.review.forecast_check import check_event
 from riskbound.logs.review.load import load_review_data
-from riskbound.logs.review.report import write_outputs
 
 EXIT_ERROR = 2
 
@@ -112,6 +111,8 @@ def review(args, progress):
         for i, event in enumerate(events):
             event.replan = replanner.replan(data, event)
             progress("replanning", (i + 1) / len(events))
+    from riskbound.logs.review.report import write_outputs  # matplotlib: only once there is a bag to draw
+
     files = write_outputs(out, data, events, series, clearance, args.clearance_m, overrides, args.max_figures,
                           progress)
     return data, events, files, time.perf_counter() - started

@@ -548,11 +548,18 @@ def _read_all(path, used, progress):
             collector = _Collector(path, typestore.deserialize_cdr)
             connections = [c for c in reader.connections if c.topic in wanted]
             total = max(sum(topics[t][1] for t in wanted), 1)
+            read = dict.fromkeys(wanted, 0)
             if connections:
                 for count, (connection, time_ns, raw) in enumerate(reader.messages(connections=connections)):
                     collector.add(wanted[connection.topic], connection.topic, connection.msgtype, time_ns, raw)
+                    read[connection.topic] += 1
                     if progress is not None and count % _PROGRESS_EVERY == 0:
                         progress("reading", count / total)
+            # Storage without checksums (rosbags writes none) can lose records to damage silently:
+            # the index's counts are the only witness.
+            short = [f"{topic} {read[topic]} of {topics[topic][1]}" for topic in wanted if read[topic] < topics[topic][1]]
+            if short:
+                raise BagError(f"{path}: damaged: fewer messages than its index lists ({'; '.join(short)})")
     except BagError:
         raise
     # A damaged file can fail anywhere in the parsers (struct, sqlite3, decompression, arithmetic

@@ -45,7 +45,8 @@ def parse_setting(name, text):
         else:
             value = text
     except ValueError:
-        raise ValueError(f"--replan-param {name}={text!r}: expected a {type(default).__name__}") from None
+        expected = {bool: "true or false", int: "an integer", float: "a number"}.get(type(default), "text")
+        raise ValueError(f"--replan-param {name}={text!r}: expected {expected}") from None
     reason = SPECS_BY_NAME[name].check(value)
     if reason:
         raise ValueError(f"--replan-param {reason}")
