@@ -173,3 +173,30 @@ def test_with_detections_only_events_are_anonymous(tmp_path):
     assert "raw `detections` without identities" in report
     for name in ("plan", "planner_status", "diagnostics", "cmd_vel", "obstacle_forecast"):
         assert f"`{name}` (" in report
+
+
+def test_namespaced_topics_and_the_recorded_radius(tmp_path):
+    # A bag of robot "r1" (topics /r1/odom, /r1/plan ...) whose planner status carries its radius.
+    path = tmp_path / "bag"
+    synthetic.write_review_bag(path, crossing(B_PLANTED), namespace="r1", robot_radius_m=0.4)
+    data = load_review_data(path, namespace="r1")
+    assert data.used["odom"] == "/r1/odom" and data.used["planner_status"] == "/r1/planner_status"
+    assert data.robot_radius_m == pytest.approx(0.4)
+    assert data.robot_radius_source == "planner_status robot_radius_m"
+    (event,), _ = event_search.find_events(data, clearance_m=0.5)
+    assert event.min_clearance_m == pytest.approx(PLANTED_CLEARANCE - 0.1, abs=0.01)  # 0.1 m larger disc
+    assert load_review_data(path, namespace="r2").missing[0][0] == "odom"
+
+
+def test_ids_received_apart_from_their_poses_are_paired(tmp_path):
+    # As recorded from a live graph: each frame's ids arrive a few ms after, or before, its poses.
+    run = crossing(B_PLANTED)
+    run.ids_log_offsets_ns = (3_000_000, -2_000_000, 7_000_000, 0)
+    path = tmp_path / "bag"
+    synthetic.write_review_bag(path, run)
+    data = load_review_data(path)
+    assert not data.obstacles.anonymous and data.notes == []
+    assert set(np.unique(data.obstacles.ids)) == {3, 7}
+    (event,), _ = event_search.find_events(data, clearance_m=0.5)
+    assert event.obstacle_id == 7
+    assert event.min_clearance_m == pytest.approx(PLANTED_CLEARANCE, abs=0.01)

@@ -4,12 +4,17 @@ distances against a hand-inverted covariance."""
 
 import numpy as np
 import pytest
+from builtin_interfaces.msg import Time
 from scipy import stats
+from std_msgs.msg import Header
 
+from riskbound.logs.bag_io import TYPESTORE
 from riskbound.logs.review import cdr
 from riskbound.logs.review.footprint import disc_box_clearance, time_to_contact
 from riskbound.logs.review.forecast_check import chi_square_2dof_quantile, gaussian_check
-from riskbound.logs.bag_io import TYPESTORE
+from riskbound.logs.review.synthetic import forecast_cloud_cdr
+from riskbound.motion.forecast import ObstacleForecast
+from riskbound.ros.forecast_codec import cloud_to_forecast, forecast_to_cloud
 
 
 def brute_force_distance(point, centre, heading, half_extents, samples=4001):
@@ -186,3 +191,23 @@ def test_fast_decoders_refuse_damaged_bytes():
     raw = TYPESTORE.serialize_cdr(status, "diagnostic_msgs/msg/DiagnosticStatus")
     with pytest.raises(cdr.CdrLayoutError):
         cdr.diagnostic_status(raw[:-3])
+
+
+def test_forecast_cloud_written_for_bags_matches_the_codec():
+    # The synthetic bags' obstacle_forecast is built with the bag type store; the reference is the
+    # package's one codec (riskbound.ros.forecast_codec): same fields, same bytes, same decode.
+    rng = np.random.default_rng(9)
+    J, S = 4, 6
+    A = rng.normal(size=(J, S, 2, 2))
+    forecast = ObstacleForecast(rng.choice(1000, J, replace=False), 0.1 * np.arange(S), rng.normal(size=(J, S, 2)),
+                                rng.uniform(-3, 3, (J, S)), A @ np.swapaxes(A, -1, -2), rng.uniform(0.1, 0.5, (J, 2)))
+    raw = forecast_cloud_cdr(7.25, forecast, frame_id="odom")
+    from_bag = TYPESTORE.deserialize_cdr(raw, "sensor_msgs/msg/PointCloud2")
+    reference = forecast_to_cloud(forecast, Header(stamp=Time(sec=7, nanosec=250_000_000), frame_id="odom"))
+    assert bytes(from_bag.data) == bytes(reference.data)
+    assert [(f.name, f.offset, f.datatype, f.count) for f in from_bag.fields] == \
+        [(f.name, f.offset, f.datatype, f.count) for f in reference.fields]
+    assert (from_bag.point_step, from_bag.width, from_bag.height) == (reference.point_step, reference.width, 1)
+    decoded, expected = cloud_to_forecast(from_bag), cloud_to_forecast(reference)
+    for name in ("track_ids", "times", "positions", "headings", "covariances", "half_extents"):
+        np.testing.assert_array_equal(getattr(decoded, name), getattr(expected, name))

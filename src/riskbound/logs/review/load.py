@@ -7,7 +7,7 @@ one robot when a bag holds several). What each is used for:
 |-------------------|-----------------------------------|----------------------------------------------|
 | odom              | nav_msgs/msg/Odometry             | robot track (without it no clearance at all) |
 | crowd_truth       | geometry_msgs/msg/PoseArray       | obstacles, first choice (synthetic bags)     |
-| crowd_truth_ids   | std_msgs/msg/UInt32MultiArray     | ids of crowd_truth, paired by log time       |
+| crowd_truth_ids   | std_msgs/msg/UInt32MultiArray     | ids of crowd_truth (pairing: see _pair_ids)  |
 | obstacle_forecast | sensor_msgs/msg/PointCloud2       | obstacles, second choice (step 0 = current   |
 |                   |                                   | estimate); forecast checks; replanning       |
 | detections        | geometry_msgs/msg/PoseArray       | obstacles, last choice (no identities)       |
@@ -63,6 +63,8 @@ OBSTACLE_SOURCES = ("crowd_truth", "obstacle_forecast", "detections")
 WATCHDOG_STATUS_NAME = "riskbound watchdog"
 DEFAULT_HALF_EXTENTS_M = (0.25, 0.2)
 DEFAULT_ROBOT_RADIUS_M = 0.3
+# Frames are 0.1 s apart at 10 Hz; a frame and its ids arrive within milliseconds of each other.
+ID_PAIRING_WINDOW_NS = 50_000_000
 _PROGRESS_EVERY = 2000
 
 
@@ -283,6 +285,7 @@ class ReviewData:
     metadata: dict
     robot_radius_m: float
     robot_radius_source: str
+    half_extents_m: tuple        # (half_length, half_width) for obstacles that do not carry their own
     half_extents_source: str
 
 
@@ -325,7 +328,7 @@ class _Collector:
         self.offsets = []
         self.odom = []
         self.truth = []
-        self.truth_ids = {}
+        self.truth_ids = []
         self.detections = []
         self.forecasts = []
         self.plans = []
@@ -361,7 +364,7 @@ class _Collector:
             self._offset(stamp, time_ns)
             (self.truth if role == "crowd_truth" else self.detections).append((stamp or None, time_ns, frame, poses))
         elif role == "crowd_truth_ids":
-            self.truth_ids[time_ns] = cdr.uint32_multi_array(raw)
+            self.truth_ids.append((time_ns, cdr.uint32_multi_array(raw)))
         elif role == "obstacle_forecast":
             stamp, frame = cdr.header(raw)
             self.forecasts.append((stamp or None, time_ns, frame, raw))
@@ -407,7 +410,7 @@ class _Collector:
             (self.truth if role == "crowd_truth" else self.detections).append(
                 (stamp_of(msg), time_ns, msg.header.frame_id, poses))
         elif role == "crowd_truth_ids":
-            self.truth_ids[time_ns] = np.asarray(msg.data, dtype=np.uint32).copy()
+            self.truth_ids.append((time_ns, np.asarray(msg.data, dtype=np.uint32).copy()))
         elif role == "obstacle_forecast":
             self.forecasts.append((stamp_of(msg), time_ns, msg.header.frame_id, raw))
         elif role == "plan":
@@ -457,19 +460,50 @@ def _robot_track(records, offset, notes):
         frame_id=records[0][2] if records else "", child_frame_id=records[0][3] if records else "")
 
 
-def _obstacles_from_pose_arrays(source, records, ids_by_log, offset, half_extents, notes):
-    """Rows from PoseArray frames; ids paired by log time and index when available."""
+def _pair_ids(records, id_records):
+    """The ids message of each PoseArray frame, or None.
+
+    A crowd bag writes a frame's ids with the frame's log time; a bag recorded from a live graph
+    receives the two messages separately, a few milliseconds apart and sometimes in either order.
+    So each frame takes the ids message nearest in log time (within ID_PAIRING_WINDOW_NS) that has
+    as many ids as the frame has poses, each ids message used once.
+    """
+    id_records = sorted(id_records, key=lambda r: r[0])
+    id_times = np.array([r[0] for r in id_records], dtype=np.int64)
+    used = np.zeros(len(id_records), dtype=bool)
+    paired = []
+    for record in records:
+        time_ns, count = record[1], len(record[3])
+        at = int(np.searchsorted(id_times, time_ns))
+        best = None
+        for j in range(max(at - 2, 0), min(at + 2, len(id_records))):
+            gap = abs(int(id_times[j]) - time_ns)
+            if not used[j] and len(id_records[j][1]) == count and gap <= ID_PAIRING_WINDOW_NS and (
+                    best is None or gap < abs(int(id_times[best]) - time_ns)):
+                best = j
+        if best is not None:
+            used[best] = True
+        paired.append(None if best is None else id_records[best][1])
+    return paired
+
+
+def _obstacles_from_pose_arrays(source, records, id_records, offset, half_extents, notes):
+    """Rows from PoseArray frames; ids paired per frame when available (frames without are dropped)."""
     times, records = _ordered(_times(records, offset), records)
-    counts = np.array([len(r[3]) for r in records], dtype=np.int64)
-    poses = np.concatenate([r[3] for r in records]) if records else np.zeros((0, 7))
-    anonymous = ids_by_log is None
+    anonymous = id_records is None
     if not anonymous:
-        paired = [ids_by_log.get(r[1]) for r in records]
-        bad = sum(1 for ids, n in zip(paired, counts) if ids is None or len(ids) != n)
-        if bad:
-            notes.append(f"{source}: ids missing or of the wrong length for {bad} of {len(records)} frames; "
+        paired = _pair_ids(records, id_records)
+        unpaired = sum(ids is None for ids in paired)
+        if unpaired > len(records) // 2:
+            notes.append(f"{source}: no matching ids for {unpaired} of {len(records)} frames; "
                          f"obstacles treated as anonymous")
             anonymous = True
+        elif unpaired:
+            notes.append(f"{source}: no matching ids for {unpaired} of {len(records)} frames; those frames skipped")
+            keep = [i for i, ids in enumerate(paired) if ids is not None]
+            times, records, paired = times[keep], [records[i] for i in keep], [paired[i] for i in keep]
+    counts = np.array([len(r[3]) for r in records], dtype=np.int64)
+    poses = np.concatenate([r[3] for r in records]) if records else np.zeros((0, 7))
     frame_index = np.repeat(np.arange(len(records)), counts)
     ids = (np.full(len(poses), -1, dtype=np.int64) if anonymous
            else np.concatenate(paired).astype(np.int64) if records else np.zeros(0, dtype=np.int64))
@@ -617,11 +651,11 @@ def load_review_data(path, namespace="", robot_radius_m=None, half_extents_m=Non
         if len(recorded):
             robot_radius_m, radius_source = float(np.median(recorded)), "planner_status robot_radius_m"
         else:
-            robot_radius_m, radius_source = DEFAULT_ROBOT_RADIUS_M, "default (planner_status does not carry it)"
+            robot_radius_m, radius_source = DEFAULT_ROBOT_RADIUS_M, "the default: the bag does not record it"
 
     extents_source = "option --obstacle-half-extents-m"
     if half_extents_m is None:
-        half_extents_m, extents_source = DEFAULT_HALF_EXTENTS_M, "default"
+        half_extents_m, extents_source = DEFAULT_HALF_EXTENTS_M, "the default: the bag does not record it"
         for i in range(min(len(forecasts), 20)):
             forecast = forecasts.get(i)
             if forecast is not None and forecast.track_count:
@@ -638,7 +672,7 @@ def load_review_data(path, namespace="", robot_radius_m=None, half_extents_m=Non
         obstacles = _obstacles_from_pose_arrays(source, records, ids, offset, half_extents_m, notes)
     elif source == "obstacle_forecast":
         obstacles = _obstacles_from_forecasts(forecasts, progress, notes)
-        extents_source = "obstacle_forecast half_length/half_width (per track)"
+        extents_source = "obstacle_forecast half_length/half_width, per track"
     else:
         obstacles = _empty_obstacles("none")
         notes.append("no obstacle topic (crowd_truth, obstacle_forecast, detections): no events can be found")
@@ -665,4 +699,4 @@ def load_review_data(path, namespace="", robot_radius_m=None, half_extents_m=Non
         watchdog=_status_series(collector.diagnostics, offset),
         commands={role: _command_series(records, offset) for role, records in collector.commands.items()},
         goals=goals, metadata=metadata, robot_radius_m=float(robot_radius_m), robot_radius_source=radius_source,
-        half_extents_source=extents_source)
+        half_extents_m=tuple(float(v) for v in half_extents_m), half_extents_source=extents_source)

@@ -19,7 +19,7 @@ stamps; lengths in metres; null where a value is unknown):
       "bag": str, "start_s": float, "end_s": float,
       "obstacle_source": "crowd_truth" | "obstacle_forecast" | "detections" | "none",
       "clearance_threshold_m": float, "robot_radius_m": float, "robot_radius_source": str,
-      "obstacle_half_extents_source": str,
+      "obstacle_half_extents_m": [half_length, half_width], "obstacle_half_extents_source": str,
       "missing_topics": [{"name": str, "type": str, "consequence": str}],
       "notes": [str],
       "planner": {"cycles": int, "failures": int, "solve_ms_median": float|null,
@@ -144,7 +144,7 @@ def events_document(data, events, clearance_m):
         "schema": SCHEMA, "bag": str(data.path), "start_s": data.start_s, "end_s": data.end_s,
         "obstacle_source": data.obstacles.source, "clearance_threshold_m": clearance_m,
         "robot_radius_m": data.robot_radius_m, "robot_radius_source": data.robot_radius_source,
-        "obstacle_half_extents_source": data.half_extents_source,
+        "obstacle_half_extents_m": data.half_extents_m, "obstacle_half_extents_source": data.half_extents_source,
         "missing_topics": [{"name": name, "type": msgtype, "consequence": consequence}
                            for name, msgtype, consequence in data.missing],
         "notes": data.notes, "planner": planner_summary(data), "watchdog": watchdog_summary(data),
@@ -355,6 +355,9 @@ def event_figure(data, event, clearance, clearance_m, path):
 
 def _source_sentence(data):
     source = data.obstacles.source
+    if source == "crowd_truth" and data.obstacles.anonymous:
+        return ("ground truth (`crowd_truth`) **without ids**: each event is the nearest walker, ids are unknown, "
+                "speeds and times to collision cannot be computed")
     if source == "crowd_truth":
         return "ground truth (`crowd_truth`, ids from `crowd_truth_ids`)"
     if source == "obstacle_forecast":
@@ -455,8 +458,10 @@ def write_report_md(path, data, events, clearance_m, overrides):
     lines.append(f"- Bag: `{data.path}`, {data.end_s - data.start_s:.1f} s of data "
                  f"(clock {data.start_s:.3f} s to {data.end_s:.3f} s; times below are seconds since the start).")
     lines.append(f"- Obstacles from {_source_sentence(data)}.")
-    lines.append(f"- Robot footprint: disc of radius {data.robot_radius_m:g} m ({data.robot_radius_source}); obstacle "
-                 f"footprint: oriented box ({data.half_extents_source}). Threshold: clearance below "
+    half_length, half_width = data.half_extents_m
+    lines.append(f"- Robot footprint: disc of radius {data.robot_radius_m:g} m (from {data.robot_radius_source}); "
+                 f"obstacle footprint: box along the obstacle's heading, half-extents {half_length:g} × {half_width:g} m "
+                 f"(from {data.half_extents_source}). Threshold: clearance below "
                  f"{clearance_m:g} m.")
     if events:
         closest = min(events, key=lambda e: e.min_clearance_m)

@@ -44,6 +44,9 @@ class SyntheticRun:
     forecast_sigma_v_mps: float = 0.3
     track_id_offset: int = 1000     # tracker ids differ from walker ids, as in a real run
     forecast_bias_m: tuple = (0.0, 0.0)  # added to every forecast position: a tracker that is off
+    # Log-time offsets of crowd_truth_ids after crowd_truth, cycled over frames: a bag recorded from a
+    # live graph receives the two separately (a crowd bag writes both at the same log time).
+    ids_log_offsets_ns: tuple = (0,)
 
     def robot_yaws(self):
         v = np.gradient(self.robot_positions, self.robot_times_s, axis=0)
@@ -176,9 +179,11 @@ def _forecast(run, k, present, velocities):
                             covariances, np.tile(run.half_extents, (len(p), 1)))
 
 
-def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="", progress=None):
+def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="", robot_radius_m=None,
+                     progress=None):
     """Write `run` as a recorded bag holding the chosen `topics` (names from ALL_TOPICS; each is
-    written as /<namespace>/<name>, /diagnostics and crowd topics as the crowd bags name them)."""
+    written as /<namespace>/<name>, /diagnostics and crowd topics as the crowd bags name them).
+    robot_radius_m: also put the radius into planner_status (the key a planner may add)."""
     unknown = set(topics) - set(ALL_TOPICS)
     if unknown:
         raise ValueError(f"topics: unknown {sorted(unknown)}; allowed: {', '.join(ALL_TOPICS)}")
@@ -219,7 +224,8 @@ def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="",
             headings = np.arctan2(walker_v[k, present, 1], walker_v[k, present, 0])
             if "crowd_truth" in topics:
                 put("crowd_truth", t, bag_io.pose_array_cdr(bag_io.seconds_to_ns(t), "odom", positions, headings))
-                put("crowd_truth_ids", t, bag_io.ids_cdr(run.walker_ids[present]))
+                offset_ns = run.ids_log_offsets_ns[k % len(run.ids_log_offsets_ns)]
+                put("crowd_truth_ids", t + 1e-9 * offset_ns, bag_io.ids_cdr(run.walker_ids[present]))
             put("detections", t, bag_io.pose_array_cdr(bag_io.seconds_to_ns(t), "odom", positions, headings))
             if "obstacle_forecast" in topics:
                 put("obstacle_forecast", t, forecast_cloud_cdr(t, _forecast(run, k, present, walker_v)))
@@ -237,6 +243,8 @@ def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="",
                       "risk_per_constraint": f"{run.risk_level / 160:.6g}",
                       "min_margin_m": "nan" if failed else f"{0.3 + 0.1 * np.cos(0.05 * k):.6g}",
                       "robot_model": "double_integrator", "horizon_steps": "20", "step_s": "0.1"}
+            if robot_radius_m is not None:
+                values["robot_radius_m"] = f"{robot_radius_m:.6g}"
             if failed:
                 values["reason"] = "no plan: infeasible (solver: Infeasible_Problem_Detected)"
             put("planner_status", t, planner_status_cdr(2 if failed else 0, "infeasible" if failed else "solved",
