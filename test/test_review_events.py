@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 
 from riskbound.logs.review import events as event_search
+from riskbound.logs.review import load as review_load
 from riskbound.logs.review import synthetic
 from riskbound.logs.review.cli import Progress, add_arguments, review
 from riskbound.logs.review.forecast_check import check_event
@@ -200,3 +201,28 @@ def test_ids_received_apart_from_their_poses_are_paired(tmp_path):
     (event,), _ = event_search.find_events(data, clearance_m=0.5)
     assert event.obstacle_id == 7
     assert event.min_clearance_m == pytest.approx(PLANTED_CLEARANCE, abs=0.01)
+
+
+def test_forecast_rows_read_from_bytes_match_the_codec(tmp_path, monkeypatch):
+    # Obstacles taken from the forecasts' first step are read straight from the cloud bytes; the
+    # reference is the package's codec (riskbound.ros.forecast_codec.cloud_to_forecast) on each cloud.
+    run = crossing(B_PLANTED, duration_s=3.0)
+    path = tmp_path / "bag"
+    synthetic.write_review_bag(path, run, topics=["odom", "obstacle_forecast"])
+    data = load_review_data(path)
+    rows = []
+    for i in range(len(data.forecasts)):
+        forecast = data.forecasts.get(i)
+        for j, track in enumerate(forecast.track_ids):
+            rows.append((track, data.forecasts.stamps_s[i] + forecast.times[0], *forecast.positions[j, 0],
+                         forecast.headings[j, 0], *forecast.half_extents[j]))
+    rows.sort()
+    obs = data.obstacles
+    got = np.column_stack([obs.ids, obs.times_s, obs.positions, obs.headings, obs.half_extents])
+    np.testing.assert_array_equal(got, np.array(rows))
+    assert len(rows) == 2 * len(run.frame_times_s)
+    # Clouds of another layout go through the codec: the same rows.
+    monkeypatch.setattr(review_load, "_first_step", lambda raw: None)
+    obs = load_review_data(path).obstacles
+    np.testing.assert_array_equal(np.column_stack([obs.ids, obs.times_s, obs.positions, obs.headings,
+                                                   obs.half_extents]), np.array(rows))

@@ -198,3 +198,25 @@ def uint32_multi_array(raw):
     if cursor.pos + 4 * count > len(cursor.raw):
         raise CdrLayoutError("truncated")
     return np.frombuffer(cursor.raw, dtype="<u4", count=count, offset=cursor.pos).copy()
+
+
+def point_cloud(raw):
+    """sensor_msgs/PointCloud2 → (stamp_s, frame_id, fields [(name, offset, datatype, count)],
+    is_bigendian, point_step, point count, data bytes)."""
+    cursor = _Cursor(raw)
+    stamp, frame_id = cursor.header()
+    height, width = cursor.u32(), cursor.u32()
+    fields = []
+    for _ in range(cursor.u32()):
+        name = cursor.string()
+        offset = cursor.u32()
+        datatype = cursor.u8()
+        fields.append((name, offset, datatype, cursor.u32()))
+    is_bigendian = bool(cursor.u8())
+    point_step = cursor.u32()
+    cursor.u32()  # row_step
+    size = cursor.u32()
+    if cursor.pos + size > len(cursor.raw):
+        raise CdrLayoutError("truncated")
+    data = cursor.raw[cursor.pos:cursor.pos + size]
+    return stamp, frame_id, fields, is_bigendian, point_step, height * width, data
