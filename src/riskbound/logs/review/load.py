@@ -626,7 +626,8 @@ def _read_all(path, used, progress):
                         progress("reading", count / total)
             # Storage without checksums (rosbags writes none) can lose records to damage silently:
             # the index's counts are the only witness.
-            short = [f"{topic} {read[topic]} of {topics[topic][1]}" for topic in wanted if read[topic] < topics[topic][1]]
+            short = [f"{topic} {read[topic]} of {topics[topic][1]}" for topic in wanted
+                     if read[topic] < topics[topic][1]]
             if short:
                 raise BagError(f"{path}: damaged: fewer messages than its index lists ({'; '.join(short)})")
     except BagError:
