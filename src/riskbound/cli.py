@@ -15,6 +15,7 @@ SUBCOMMANDS = {
     "param": ("riskbound.ros.param_client", "get, set or list a running node's parameters"),
     "crowd": ("riskbound.crowd.cli", "generate a synthetic crowd bag from a scenario file"),
     "review": ("riskbound.logs.review.cli", "find near-misses in a recorded bag, explain them, replan them"),
+    "launch": ("riskbound.launch_runner", "run a ROS 2 XML launch file of this package without the ROS launch tools"),
 }
 
 
