@@ -118,3 +118,13 @@ def test_unreadable_bag_in_process(close_pass_bag, tmp_path, capsys, case):
     assert main(["review", str(bag), "--out", str(tmp_path / "out"), "--quiet"]) == 2
     err = capsys.readouterr().err
     assert err.startswith(f"riskbound review: error: {bag}")
+
+
+def test_review_imports_no_rclpy():
+    # Bags are reviewed offline: the review must not need a ROS context (project rule: only
+    # riskbound.ros imports rclpy).
+    code = ("import sys, riskbound.logs.review.cli, riskbound.logs.review.report, riskbound.logs.review.replan; "
+            "print(sorted(m for m in sys.modules if m.split('.')[0] == 'rclpy'))")
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == "[]"
