@@ -9,7 +9,8 @@ header stamps included. Topic names are the bag's (absolute); remap them with `-
 Playback runs on its own thread, so the node keeps answering parameter requests while it waits
 for the next message. It starts once every topic in wait_for_publishers has a publisher and every
 topic in wait_for_subscribers a subscriber (or wait_timeout_s has passed), plus start_delay_s;
-with exit_at_end it ends the process (code 0) after the window has been played, which a launch file can use to end a whole run (on_exit="shutdown").
+with exit_at_end it ends the process (code 0) after the window has been played, which a launch
+file can use to end a whole run (on_exit="shutdown").
 
 Parameters: riskbound.logs.playback.REPLAY_SPECS and LIST_SPECS (all read-only: restart to change).
 
