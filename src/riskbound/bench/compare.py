@@ -38,9 +38,11 @@ success_rates.png. JSON keys:
     collision_probability_max, stuck}}, obstacle_active_instances, cost_gaps{<m>[...]}},
     crowd{sizes, seeds, methods{<m>{<size>{episodes, success_rate, collision_rate,
     collisions_while_stopped, stuck, solve_ms_median, solve_ms_p90, failed_solve_fraction,
+    failed_solves_by_status{<status>: cycles},
     collision_probability_mean, collision_probability_max, collision_probability_max_considered,
     plans_above_alpha}}}}, pruning{walkers_low, walkers_high, solve_ms_median_low,
-    solve_ms_median_high, ratio, solve_ms_median_high_far, ratio_far}, targets{<name>{target, measured, met}}, wall_time_s
+    solve_ms_median_high, ratio, solve_ms_median_high_far, ratio_far},
+    targets{<name>{target, measured, met}}, wall_time_s
 Figures that cannot be computed (for example a cost gap when no instance was solved by both
 methods) are written as null.
 """
@@ -247,7 +249,8 @@ def run_suite(settings, instances, seed, sigma_multiple, passes, mc_samples, tim
                 record["collision_probability"] = plan_collision_probability(
                     result.states, result.inputs, case.P0, case.forecast, suite_settings, planner.model,
                     mc_rng, mc_samples)
-                record["progress"] = float(np.linalg.norm(case.goal) - np.linalg.norm(case.goal - result.states[-1, 0:2]))
+                remaining = np.linalg.norm(case.goal - result.states[-1, 0:2])
+                record["progress"] = float(np.linalg.norm(case.goal) - remaining)
             records[method].append(record)
             line.append(f"{method} {result.status} {result.solve_ms:.0f} ms")
         log(" | ".join(line))
@@ -321,29 +324,36 @@ class ConcourseWalkers:
         rng = np.random.default_rng(scene.seed)
         J = scene.walkers + scene.far_walkers
         L, W = scene.half_length_m, scene.half_width_m
+        # The far hall draws from its own stream: the concourse is the same with or without it.
+        near = self._draw(rng, scene.walkers, 0.0)
+        far = self._draw(np.random.default_rng([scene.seed, 1]), scene.far_walkers, FAR_HALL_OFFSET_M)
+        self.positions, self.velocities, self.headings, self.half_extents, self.hall_y = (
+            np.concatenate([a, b]) for a, b in zip(near, far))
+
+    def _draw(self, rng, count, hall_y):
+        """Positions, velocities, headings, half-extents and hall offsets of `count` walkers."""
+        scene = self.scene
+        L, W = scene.half_length_m, scene.half_width_m
         mean, sd, low, high = WALKER_SPEED_MPS
-        speed = np.clip(rng.normal(mean, sd, J), low, high)
-        stream = rng.random(J) < scene.stream_share
-        course = np.where(stream, np.where(rng.random(J) < 0.5, 0.0, np.pi) + rng.normal(0.0, 0.15, J),
-                          rng.uniform(-np.pi, np.pi, J))
+        speed = np.clip(rng.normal(mean, sd, count), low, high)
+        stream = rng.random(count) < scene.stream_share
+        course = np.where(stream, np.where(rng.random(count) < 0.5, 0.0, np.pi) + rng.normal(0.0, 0.15, count),
+                          rng.uniform(-np.pi, np.pi, count))
         velocities = speed[:, None] * np.stack([np.cos(course), np.sin(course)], axis=-1)
-        self.hall_y = np.where(np.arange(J) < scene.walkers, 0.0, FAR_HALL_OFFSET_M)
         start, goal = np.asarray(scene.start), np.asarray(scene.goal)
         early = np.linspace(0.0, scene.clear_s, 16)
-        positions = np.zeros((J, 2))
-        for j in range(J):
+        positions = np.zeros((count, 2))
+        for j in range(count):
             while True:
-                p = rng.uniform([-L, -W], [L, W]) + [0.0, self.hall_y[j]]
+                p = rng.uniform([-L, -W], [L, W]) + [0.0, hall_y]
                 path = p[None, :] + early[:, None] * velocities[j][None, :]
                 if (np.linalg.norm(path - start, axis=1).min() > scene.clear_m
                         and np.linalg.norm(p - goal) > scene.clear_m):
                     positions[j] = p
                     break
-        self.positions = positions
-        self.velocities = velocities
-        self.headings = course
-        self.half_extents = np.stack([rng.uniform(*WALKER_HALF_LENGTH_M, J), rng.uniform(*WALKER_HALF_WIDTH_M, J)],
-                                     axis=-1)
+        half_extents = np.stack([rng.uniform(*WALKER_HALF_LENGTH_M, count),
+                                 rng.uniform(*WALKER_HALF_WIDTH_M, count)], axis=-1)
+        return positions, velocities, course, half_extents, np.full(count, hall_y)
 
     def advance(self, dt):
         L, W = self.scene.half_length_m, self.scene.half_width_m
@@ -389,7 +399,7 @@ def run_episode(planner, settings, scene, mc_samples, collision_check=True):
         x = np.array([*scene.start, 0.0, 0.0])
     P0 = np.diag([0.02**2, 0.02**2, 0.05**2, 0.05**2])
     planner.reset()
-    solve_ms, probabilities, probabilities_considered, failures = [], [], [], 0
+    solve_ms, probabilities, probabilities_considered, failures = [], [], [], {}
     outcome, cycles = "stuck", int(round(scene.time_limit_s / dt))
     hit_while_stopped = False
     for _ in range(cycles):
@@ -409,7 +419,7 @@ def run_episode(planner, settings, scene, mc_samples, collision_check=True):
                         settings, model, mc_rng, mc_samples)
                 probabilities_considered.append(probability)
         else:
-            failures += 1
+            failures[result.status] = failures.get(result.status, 0) + 1
             u = _brake(model, x, settings)
         noise = robot_rng.normal(0.0, [settings.robot_accel_noise, settings.robot_turn_noise])
         applied = u + (noise if model.name == "unicycle" else robot_rng.normal(0.0, settings.robot_accel_noise, 2))
@@ -465,7 +475,10 @@ def summarise_crowds(results, alpha):
                 "collisions_while_stopped": sum(e["hit_while_stopped"] for e in episodes),
                 "stuck": outcomes.count("stuck"),
                 "solve_ms_median": float(np.median(solve_ms)), "solve_ms_p90": _percentile(solve_ms, 90),
-                "failed_solve_fraction": float(sum(e["failures"] for e in episodes) / max(len(solve_ms), 1)),
+                "failed_solve_fraction": float(sum(sum(e["failures"].values()) for e in episodes)
+                                               / max(len(solve_ms), 1)),
+                "failed_solves_by_status": {status: sum(e["failures"].get(status, 0) for e in episodes)
+                                            for status in sorted({s for e in episodes for s in e["failures"]})},
                 "collision_probability_mean": float(np.mean(probability)) if len(probability) else 0.0,
                 "collision_probability_max": float(np.max(probability)) if len(probability) else 0.0,
                 "collision_probability_max_considered": float(np.max(considered)) if len(considered) else 0.0,
@@ -556,6 +569,10 @@ def markdown(report):
                          f"{m['solve_ms_p90']:.1f} | {100 * m['failed_solve_fraction']:.1f} % | "
                          f"{m['collision_probability_mean']:.4f} | {m['collision_probability_max']:.4f} | "
                          f"{m['collision_probability_max_considered']:.4f} | {m['plans_above_alpha']} |")
+    lines += ["", "Failed solves (the robot brakes on each) by status: " + "; ".join(
+        f"{LABELS[method]} {size}: " + (", ".join(f"{s} {n}" for s, n in m["failed_solves_by_status"].items())
+                                        or "none")
+        for method, by_size in crowd["methods"].items() for size, m in by_size.items())]
     lines += ["", "Mixed-integer: not run in closed loop (one cycle takes seconds, see (a)).", "",
               f"## Pruning: our median solve ms at {pruning['walkers_high']} vs {pruning['walkers_low']} walkers",
               "", f"- same hall (local density ×{pruning['walkers_high'] / pruning['walkers_low']:g}): "

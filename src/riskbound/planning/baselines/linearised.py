@@ -34,7 +34,12 @@ from riskbound.risk.quantile import chance_constraint_backoff
 UNUSED_OFFSET_M = -1.0e4
 # Plans closer than this (largest position change) end the passes of one cycle.
 PASS_CONVERGENCE_M = 1e-3
-_CAPPED = {"Maximum_Iterations_Exceeded", "Maximum_WallTime_Exceeded", "Maximum_CpuTime_Exceeded"}
+_CAPPED = {"Maximum_Iterations_Exceeded", "Maximum_WallTime_Exceeded", "Maximum_CpuTime_Exceeded",
+           "DAQP_ITERATION_LIMIT"}
+# DAQP reports its exit flag as a number (the EXIT_* constants of its C interface).
+_DAQP_EXIT = {"1": "DAQP_OPTIMAL", "2": "DAQP_SOFT_OPTIMAL", "-1": "DAQP_INFEASIBLE", "-2": "DAQP_CYCLING",
+              "-3": "DAQP_UNBOUNDED", "-4": "DAQP_ITERATION_LIMIT", "-5": "DAQP_NONCONVEX",
+              "-6": "DAQP_OVERDETERMINED_INITIAL"}
 
 
 @dataclass
@@ -81,8 +86,8 @@ def half_planes(forecast, robot_position_covariances, robot_position, points, se
         # A linearisation point on the centre has no gradient: push away from the robot's position.
         fallback = np.asarray(robot_position)[None, None, :] - centres[:n]
         fallback_length = np.linalg.norm(fallback, axis=-1)
-        fallback = np.where(fallback_length[..., None] > 1e-9, fallback / np.maximum(fallback_length, 1e-300)[..., None],
-                            np.array([1.0, 0.0]))
+        fallback = np.where(fallback_length[..., None] > 1e-9,
+                            fallback / np.maximum(fallback_length, 1e-300)[..., None], np.array([1.0, 0.0]))
         unit = np.where(length[..., None] > 1e-9, gradient / np.maximum(length, 1e-300)[..., None], fallback)
         normals[:n] = unit
         axes = face_normals(headings[:n])  # (n, N, 2, 2): rows along and across the heading
@@ -149,6 +154,7 @@ class LinearisedPlanner(BaselinePlanner):
             finite = bool(np.all(np.isfinite(w)))
             feasible = finite and self.violation(w, g, lbx, ubx, self._lbg, self._ubg) <= FEASIBILITY_TOLERANCE
             solver_status = str(stats.get("return_status", "unknown"))
+            solver_status = _DAQP_EXIT.get(solver_status, solver_status)
             # QP solvers word success differently (DAQP returns a number): trust their flag.
             converged = {solver_status} if stats.get("success", False) else set()
             status = classify(solver_status, converged, _CAPPED, feasible)
