@@ -36,8 +36,8 @@ WARN_THROTTLE_S = 5.0
 # Recorded when `topics` is empty: everything except the graph's own housekeeping.
 NOT_RECORDED_BY_DEFAULT = ("/rosout", "/parameter_events")
 RECORDER_SPECS = (
-    SettingSpec("output", "", "bag directory to create (must not exist); empty: riskbound_<date>_<time> in "
-                "the working directory", read_only=True),
+    SettingSpec("output", "", "bag directory to create (must not exist); ending in '/' or empty: a new "
+                "riskbound_<date>_<time> inside that directory (or the working directory)", read_only=True),
     SettingSpec("storage", "mcap", "storage format of the bag", choices=STORAGE_FORMATS, read_only=True),
     SettingSpec("discovery_period_s", 0.5, "how often the graph is searched for the chosen topics [s]",
                 0.05, 60.0, read_only=True),
@@ -57,7 +57,9 @@ class RecorderNode(Node):
             raise ValueError(f"topics={list(requested)!r} is not allowed: topic names must not be empty")
         self._wanted = {self.resolve_topic_name(topic) for topic in requested}
         self._depth = values["queue_depth"]
-        output = values["output"] or default_bag_name()
+        output = values["output"]
+        if not output or output.endswith("/"):
+            output += default_bag_name()
         self.recorder = RawBagRecorder(output, storage=values["storage"])
         self._refused = set()
         self._last_warned = {}
