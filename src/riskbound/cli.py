@@ -16,6 +16,7 @@ SUBCOMMANDS = {
     "crowd": ("riskbound.crowd.cli", "generate a synthetic crowd bag from a scenario file"),
     "review": ("riskbound.logs.review.cli", "find near-misses in a recorded bag, explain them, replan them"),
     "launch": ("riskbound.launch_runner", "run a ROS 2 XML launch file of this package without the ROS launch tools"),
+    "closedloop": ("riskbound.closed_loop", "replay a crowd bag through the full stack with a simulated robot and report"),
 }
 
 
