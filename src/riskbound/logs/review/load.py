@@ -669,8 +669,10 @@ def load_review_data(path, namespace="", robot_radius_m=None, half_extents_m=Non
 
     collector, topics, used = _read_all(path, choose, progress)
     notes, source = state["notes"], state["source"]
+    # Ids only matter with the ground truth they belong to.
     missing = [(role, msgtype, consequence) for role, (msgtype, consequence) in ROLES.items()
-               if role not in state["matched"]]
+               if role not in state["matched"]
+               and not (role == "crowd_truth_ids" and "crowd_truth" not in state["matched"])]
     offset = float(np.median(collector.offsets)) if collector.offsets else 0.0
 
     forecast_times = _times(collector.forecasts, offset)

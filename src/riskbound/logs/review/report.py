@@ -370,17 +370,18 @@ def _source_sentence(data):
     source = data.obstacles.source
     if source == "crowd_truth" and data.obstacles.anonymous:
         return ("ground truth (`crowd_truth`) **without ids**: each event is the nearest walker, ids are unknown, "
-                "speeds and times to collision cannot be computed")
+                "speeds and times to collision cannot be computed.")
     if source == "crowd_truth":
-        return "ground truth (`crowd_truth`, ids from `crowd_truth_ids`)"
+        return "ground truth (`crowd_truth`, ids from `crowd_truth_ids`)."
     if source == "obstacle_forecast":
         return ("**fallback:** no `crowd_truth` in the bag, so obstacles are the tracker's current estimates "
-                "(step 0 of `obstacle_forecast`); events are as the tracker saw them, not as they were")
+                "(step 0 of `obstacle_forecast`); events are as the tracker saw them, not necessarily as they were, "
+                "and a forecast is checked against the tracker's later estimate.")
     if source == "detections":
         return ("**fallback:** no `crowd_truth` and no `obstacle_forecast` in the bag, so obstacles are raw "
                 "`detections` without identities: each event is the nearest detection, ids are unknown, "
-                "speeds and times to collision cannot be computed")
-    return "**none:** the bag has no obstacle topic; no events can be found"
+                "speeds and times to collision cannot be computed.")
+    return "**none:** the bag has no obstacle topic; no events can be found."
 
 
 def _event_row(data, event):
@@ -407,7 +408,9 @@ def _event_section(data, event):
                  f"closest at {event.t_min - t0:.2f} s with clearance **{event.min_clearance_m:.3f} m**.")
     lines.append(f"- At onset: relative speed {_f(event.relative_speed_mps, 2, ' m/s')}, time to collision at "
                  f"constant velocities {_f(event.time_to_collision_s, 2, ' s')}.")
-    lines += ["", "What the forecast said before the closest approach, against where the obstacle was:", "",
+    actual = ("where the tracker placed the obstacle then" if data.obstacles.source == "obstacle_forecast"
+              else "where the obstacle was")
+    lines += ["", f"What the forecast said before the closest approach, against {actual}:", "",
               "| made before | position error [m] | Mahalanobis distance | inside 1−α ellipse (α) | note |",
               "|---|---|---|---|---|"]
     for check in event.forecast_checks:
@@ -470,7 +473,7 @@ def write_report_md(path, data, events, clearance_m, overrides):
     lines = [f"# Near-miss review of `{data.path.name}`", "", "## Summary", ""]
     lines.append(f"- Bag: `{data.path}`, {data.end_s - data.start_s:.1f} s of data "
                  f"(clock {data.start_s:.3f} s to {data.end_s:.3f} s; times below are seconds since the start).")
-    lines.append(f"- Obstacles from {_source_sentence(data)}.")
+    lines.append(f"- Obstacles: {_source_sentence(data)}")
     half_length, half_width = data.half_extents_m
     lines.append(f"- Robot footprint: disc of radius {data.robot_radius_m:g} m (from {data.robot_radius_source}); "
                  f"obstacle footprint: box along the obstacle's heading, half-extents "
