@@ -33,6 +33,7 @@ setup(
             "planner_node = riskbound.ros.planner_node:main",
             "watchdog_node = riskbound.ros.watchdog_node:main",
             "sim_robot_node = riskbound.ros.sim_robot_node:main",
+            "tracker_node = riskbound.ros.tracker_node:main",
         ],
     },
 )
