@@ -230,8 +230,9 @@ def _event(data, obs, rows, ids, values, times, first, last, threshold, max_step
         robot_at = data.robot.position_at(t_start)[0]
         rv = np.array([np.interp(t_start, data.robot.times_s, robot_velocity[:, i]) for i in range(2)])
         ov = obstacle_velocity[onset_row]
-        obstacle_at = obs.positions[onset_row] + ov * (t_start - obs.times_s[onset_row]) if np.all(
-            np.isfinite(ov)) else obs.positions[onset_row]
+        obstacle_at = obs.positions[onset_row]
+        if np.all(np.isfinite(ov)):  # back from the first observation below the threshold to the crossing
+            obstacle_at = obstacle_at + ov * (t_start - obs.times_s[onset_row])
         relative_speed = float(np.linalg.norm(rv - ov))
         ttc = time_to_contact(robot_at, rv, data.robot_radius_m, obstacle_at, ov, obs.headings[onset_row],
                               obs.half_extents[onset_row])
