@@ -420,7 +420,8 @@ class PlannerNode(Node):
             "risk_per_constraint": values.get("risk_per_constraint", float("nan")),
             "min_margin_m": values.get("min_margin_m", float("nan")),
             "robot_model": settings.robot_model, "horizon_steps": settings.horizon_steps,
-            "step_s": settings.step_s, "rebuild_pending": self._rebuild_pending(),
+            "step_s": settings.step_s, "robot_radius_m": settings.robot_radius_m,
+            "rebuild_pending": self._rebuild_pending(),
         })
         if build_error:
             full["rebuild_error"] = build_error
