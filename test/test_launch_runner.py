@@ -235,10 +235,9 @@ def test_arguments_and_parameter_files_reach_the_nodes_and_ctrl_c_stops_all(tmp_
     try:
         assert runner.read_until(lambda line: "goal (4.5, 0.0)" in line, 60.0), runner.text
         node = "/lr_test/sim_robot"
-        assert (cli("param", "get", node, "max_accel_mps2").stdout.strip(),
-                cli("param", "get", node, "command_timeout_s").stdout.strip(),
-                cli("param", "get", node, "initial_x").stdout.strip(),
-                cli("param", "get", node, "rate_hz").stdout.strip()) == ("2.25", "0.75", "3.25", "50.0")
+        values = [cli("param", "get", node, name, "--timeout-s", "20").stdout.strip()
+                  for name in ("max_accel_mps2", "command_timeout_s", "initial_x", "rate_hz")]
+        assert values == ["2.25", "0.75", "3.25", "50.0"]  # file, file, launch argument, node default
         assert set(runner.pids) == {"sim_robot", "goal_lr_test"}
         assert "[goal_lr_test] [INFO]" in runner.text  # output="screen" is echoed with the node's name
         os.killpg(runner.process.pid, signal.SIGINT)
