@@ -143,7 +143,8 @@ def test_linearised_unicycle_plan_follows_its_dynamics_and_half_planes():
     for k in range(settings.horizon_steps):
         np.testing.assert_allclose(planner.model.step(result.states[k], result.inputs[k], settings.step_s),
                                    result.states[k + 1], atol=1e-6)
-    values = np.einsum("ki,ki->k", result.constraints.normals[0], result.states[1:, 0:2]) - result.constraints.offsets[0]
+    planes = result.constraints
+    values = np.einsum("ki,ki->k", planes.normals[0], result.states[1:, 0:2]) - planes.offsets[0]
     assert np.all(values >= -TOL)
 
 
