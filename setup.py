@@ -34,6 +34,9 @@ setup(
             "watchdog_node = riskbound.ros.watchdog_node:main",
             "sim_robot_node = riskbound.ros.sim_robot_node:main",
             "tracker_node = riskbound.ros.tracker_node:main",
+            "replay_node = riskbound.ros.replay_node:main",
+            "recorder_node = riskbound.ros.recorder_node:main",
+            "goal_node = riskbound.ros.goal_node:main",
         ],
     },
 )

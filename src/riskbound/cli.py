@@ -21,7 +21,8 @@ SUBCOMMANDS = {
 
 
 def main(argv=None):
-    listing = "\n".join(f"  {name:<8} {help_text}" for name, (_, help_text) in SUBCOMMANDS.items())
+    width = max(len(name) for name in SUBCOMMANDS)
+    listing = "\n".join(f"  {name:<{width}} {help_text}" for name, (_, help_text) in SUBCOMMANDS.items())
     parser = argparse.ArgumentParser(prog="riskbound", description=__doc__.splitlines()[0],
                                      epilog="commands:\n" + listing,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
