@@ -18,12 +18,12 @@ after which the robot brakes to zero as a base does when its command stream stop
 
 import math
 from collections import deque
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from riskbound.motion.robot_models import ROBOT_MODELS, VelocityCommand, make_robot_model
-from riskbound.planning.settings import SettingSpec
+from riskbound.planning.settings import SettingSpec, validate_fields
 
 SIM_ROBOT_SPECS = (
     SettingSpec("robot_model", "double_integrator", "motion model of the simulated robot",
@@ -83,14 +83,7 @@ class SimRobotSettings:
     seed: int = SPECS_BY_NAME["seed"].default
 
     def __post_init__(self):
-        for item in fields(self):
-            value = getattr(self, item.name)
-            spec = SPECS_BY_NAME[item.name]
-            if isinstance(spec.default, float) and isinstance(value, int) and not isinstance(value, bool):
-                object.__setattr__(self, item.name, float(value))
-            reason = spec.check(getattr(self, item.name))
-            if reason:
-                raise ValueError(reason)
+        validate_fields(self, SPECS_BY_NAME)
         for name in ("frame_id", "child_frame_id"):
             if not getattr(self, name):
                 raise ValueError(f"{name}='' is not allowed: must name a frame")

@@ -54,6 +54,22 @@ class SettingSpec:
         return None
 
 
+def validate_fields(settings, specs_by_name):
+    """Check every field of a frozen settings dataclass against its spec, in field order.
+
+    An integer given for a float setting becomes a float (as ROS parameter files often carry them);
+    anything else out of type or range raises ValueError with the spec's reason.
+    """
+    for item in fields(settings):
+        spec = specs_by_name[item.name]
+        value = getattr(settings, item.name)
+        if isinstance(spec.default, float) and isinstance(value, int) and not isinstance(value, bool):
+            object.__setattr__(settings, item.name, float(value))
+        reason = spec.check(getattr(settings, item.name))
+        if reason:
+            raise ValueError(reason)
+
+
 PLANNER_SPECS = (
     SettingSpec("risk_level", 0.05, "total collision probability bound α (see risk_allocation)",
                 0.0, 0.5, low_open=True, high_open=True),
@@ -122,14 +138,7 @@ class PlannerSettings:
     solver_tolerance: float = 1e-4
 
     def __post_init__(self):
-        for item in fields(self):
-            value = getattr(self, item.name)
-            if (isinstance(SPECS_BY_NAME[item.name].default, float) and isinstance(value, int)
-                    and not isinstance(value, bool)):
-                object.__setattr__(self, item.name, float(value))
-            reason = SPECS_BY_NAME[item.name].check(getattr(self, item.name))
-            if reason:
-                raise ValueError(reason)
+        validate_fields(self, SPECS_BY_NAME)
 
     def with_changes(self, **changes):
         """Return a copy with `changes` applied; ValueError names the first invalid one."""

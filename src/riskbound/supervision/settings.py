@@ -6,9 +6,9 @@ command limits default to the planner's defaults (riskbound.planning.settings), 
 and a watchdog started without parameter files agree.
 """
 
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, replace
 
-from riskbound.planning.settings import PlannerSettings, SettingSpec
+from riskbound.planning.settings import PlannerSettings, SettingSpec, validate_fields
 
 STOP_MODES = ("zero", "ramp")
 
@@ -78,14 +78,7 @@ class WatchdogSettings:
     statistics_window: int = SPECS_BY_NAME["statistics_window"].default
 
     def __post_init__(self):
-        for item in fields(self):
-            value = getattr(self, item.name)
-            spec = SPECS_BY_NAME[item.name]
-            if isinstance(spec.default, float) and isinstance(value, int) and not isinstance(value, bool):
-                object.__setattr__(self, item.name, float(value))
-            reason = spec.check(getattr(self, item.name))
-            if reason:
-                raise ValueError(reason)
+        validate_fields(self, SPECS_BY_NAME)
         if self.check_rate_hz < self.control_rate_hz:
             raise ValueError(f"check_rate_hz={self.check_rate_hz!r} is out of range: must be ≥ control_rate_hz "
                              f"({self.control_rate_hz!r})")

@@ -10,9 +10,9 @@ Forecast grid defaults equal the planner's (horizon_steps=20, step_s=0.1): the c
 files keep the two in step.
 """
 
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, replace
 
-from riskbound.planning.settings import SettingSpec
+from riskbound.planning.settings import SettingSpec, validate_fields
 from riskbound.tracking.filters import MOTION_MODELS
 
 TRACKER_SPECS = (
@@ -100,14 +100,7 @@ class TrackerSettings:
     footprint_half_width_m: float = 0.2
 
     def __post_init__(self):
-        for item in fields(self):
-            value = getattr(self, item.name)
-            spec = SPECS_BY_NAME[item.name]
-            if isinstance(spec.default, float) and isinstance(value, int) and not isinstance(value, bool):
-                object.__setattr__(self, item.name, float(value))
-            reason = spec.check(getattr(self, item.name))
-            if reason:
-                raise ValueError(reason)
+        validate_fields(self, SPECS_BY_NAME)
         if self.confirm_hits > self.confirm_window:
             raise ValueError(f"confirm_hits={self.confirm_hits} is out of range: must be in "
                              f"[1, confirm_window={self.confirm_window}]")
