@@ -18,13 +18,10 @@ import time
 import traceback
 
 import numpy as np
-import rclpy
 from diagnostic_msgs.msg import DiagnosticStatus
 from geometry_msgs.msg import PoseStamped, TwistStamped
 from nav_msgs.msg import Odometry, Path
 from rcl_interfaces.msg import SetParametersResult
-from rclpy.exceptions import ParameterException
-from rclpy.executors import ExternalShutdownException
 from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy, qos_profile_sensor_data
 from sensor_msgs.msg import PointCloud2
@@ -37,6 +34,7 @@ from riskbound.ros import plan_messages
 from riskbound.ros.conversions import quaternion_to_yaw, stamp_to_seconds
 from riskbound.ros.forecast_codec import cloud_to_forecast
 from riskbound.ros.setting_parameters import parameter_descriptor
+from riskbound.ros.node_main import spin_node
 
 NODE_NAME = "planner"
 NODE_SPECS = (
@@ -443,22 +441,7 @@ class PlannerNode(Node):
 
 def main(args=None):
     """init → spin → shutdown; Ctrl-C and SIGTERM end it cleanly. Returns the exit code."""
-    rclpy.init(args=args)
-    node = None
-    code = 0
-    try:
-        node = PlannerNode()
-        rclpy.spin(node)
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
-    except (ValueError, ParameterException) as error:
-        rclpy.logging.get_logger(NODE_NAME).fatal(f"invalid configuration: {error}")
-        code = 1
-    finally:
-        if node is not None:
-            node.destroy_node()
-        rclpy.try_shutdown()
-    return code
+    return spin_node(PlannerNode, NODE_NAME, args)
 
 
 if __name__ == "__main__":

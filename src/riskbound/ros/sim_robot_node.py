@@ -12,12 +12,9 @@ import math
 import sys
 import time
 
-import rclpy
 from geometry_msgs.msg import TwistStamped
 from nav_msgs.msg import Odometry
 from rcl_interfaces.msg import SetParametersResult
-from rclpy.exceptions import ParameterException
-from rclpy.executors import ExternalShutdownException
 from rclpy.node import Node
 from rclpy.qos import QoSProfile, ReliabilityPolicy, qos_profile_sensor_data
 
@@ -26,6 +23,7 @@ from riskbound.motion.simulated_robot import (SIM_ROBOT_SPECS, SPECS_BY_NAME, Co
                                               SimulatedRobot)
 from riskbound.ros.conversions import yaw_to_quaternion
 from riskbound.ros.setting_parameters import checked_changes, declare_settings
+from riskbound.ros.node_main import spin_node
 
 NODE_NAME = "sim_robot"
 WARN_THROTTLE_S = 2.0
@@ -123,22 +121,7 @@ class SimRobotNode(Node):
 
 def main(args=None):
     """init → spin → shutdown; Ctrl-C and SIGTERM end it cleanly. Returns the exit code."""
-    rclpy.init(args=args)
-    node = None
-    code = 0
-    try:
-        node = SimRobotNode()
-        rclpy.spin(node)
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
-    except (ValueError, ParameterException) as error:
-        rclpy.logging.get_logger(NODE_NAME).fatal(f"invalid configuration: {error}")
-        code = 1
-    finally:
-        if node is not None:
-            node.destroy_node()
-        rclpy.try_shutdown()
-    return code
+    return spin_node(SimRobotNode, NODE_NAME, args)
 
 
 if __name__ == "__main__":

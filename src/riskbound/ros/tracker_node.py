@@ -22,12 +22,9 @@ import time
 import traceback
 
 import numpy as np
-import rclpy
 from builtin_interfaces.msg import Time
 from geometry_msgs.msg import Point, PoseArray
 from rcl_interfaces.msg import SetParametersResult
-from rclpy.exceptions import ParameterException
-from rclpy.executors import ExternalShutdownException
 from rclpy.node import Node
 from rclpy.qos import QoSProfile, ReliabilityPolicy, qos_profile_sensor_data
 from sensor_msgs.msg import PointCloud2
@@ -38,6 +35,7 @@ from riskbound.planning.settings import SettingSpec
 from riskbound.ros.conversions import quaternion_to_yaw, seconds_to_stamp, stamp_to_seconds, yaw_to_quaternion
 from riskbound.ros.forecast_codec import forecast_to_cloud
 from riskbound.ros.setting_parameters import checked_changes, declare_settings
+from riskbound.ros.node_main import spin_node
 from riskbound.tracking.gating import covariance_ellipses
 from riskbound.tracking.settings import TRACKER_SPECS, TrackerSettings
 from riskbound.tracking.tracker import MultiTargetTracker
@@ -213,22 +211,7 @@ class TrackerNode(Node):
 
 def main(args=None):
     """init → spin → shutdown; Ctrl-C and SIGTERM end it cleanly. Returns the exit code."""
-    rclpy.init(args=args)
-    node = None
-    code = 0
-    try:
-        node = TrackerNode()
-        rclpy.spin(node)
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
-    except (ValueError, ParameterException) as error:
-        rclpy.logging.get_logger(NODE_NAME).fatal(f"invalid configuration: {error}")
-        code = 1
-    finally:
-        if node is not None:
-            node.destroy_node()
-        rclpy.try_shutdown()
-    return code
+    return spin_node(TrackerNode, NODE_NAME, args)
 
 
 if __name__ == "__main__":

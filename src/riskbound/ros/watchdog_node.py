@@ -22,13 +22,10 @@ import sys
 import time
 import traceback
 
-import rclpy
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
 from geometry_msgs.msg import TwistStamped
 from nav_msgs.msg import Odometry
 from rcl_interfaces.msg import SetParametersResult
-from rclpy.exceptions import ParameterException
-from rclpy.executors import ExternalShutdownException
 from rclpy.node import Node
 from rclpy.qos import QoSProfile, ReliabilityPolicy, qos_profile_sensor_data
 from sensor_msgs.msg import PointCloud2
@@ -36,6 +33,7 @@ from sensor_msgs.msg import PointCloud2
 from riskbound.motion.robot_models import VelocityCommand
 from riskbound.ros.conversions import stamp_to_seconds
 from riskbound.ros.setting_parameters import checked_changes, declare_settings
+from riskbound.ros.node_main import spin_node
 from riskbound.supervision.health import DEGRADED, HEALTHY, HealthMonitor, planner_status_from_values
 from riskbound.supervision.settings import SPECS_BY_NAME, WATCHDOG_SPECS, WatchdogSettings
 from riskbound.supervision.stop import ZERO_VELOCITY, stop_command
@@ -266,22 +264,7 @@ class WatchdogNode(Node):
 
 def main(args=None):
     """init → spin → shutdown; Ctrl-C and SIGTERM end it cleanly. Returns the exit code."""
-    rclpy.init(args=args)
-    node = None
-    code = 0
-    try:
-        node = WatchdogNode()
-        rclpy.spin(node)
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
-    except (ValueError, ParameterException) as error:
-        rclpy.logging.get_logger(NODE_NAME).fatal(f"invalid configuration: {error}")
-        code = 1
-    finally:
-        if node is not None:
-            node.destroy_node()
-        rclpy.try_shutdown()
-    return code
+    return spin_node(WatchdogNode, NODE_NAME, args)
 
 
 if __name__ == "__main__":
