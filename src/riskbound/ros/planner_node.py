@@ -14,7 +14,6 @@ Run: python -m riskbound.ros.planner_node --ros-args --params-file config/drone.
 
 import sys
 import threading
-import time
 import traceback
 
 import numpy as np
@@ -35,6 +34,7 @@ from riskbound.ros.conversions import quaternion_to_yaw, stamp_to_seconds
 from riskbound.ros.forecast_codec import cloud_to_forecast
 from riskbound.ros.setting_parameters import parameter_descriptor
 from riskbound.ros.node_main import spin_node
+from riskbound.ros.throttled_warnings import ThrottledWarnings
 
 NODE_NAME = "planner"
 NODE_SPECS = (
@@ -53,7 +53,6 @@ NODE_SPECS = (
 )
 ALL_SPECS = {spec.name: spec for spec in PLANNER_SPECS + NODE_SPECS}
 PLANNER_NAMES = frozenset(spec.name for spec in PLANNER_SPECS)
-WARN_THROTTLE_S = 2.0
 
 _LEVEL_OK, _LEVEL_WARN, _LEVEL_ERROR = DiagnosticStatus.OK, DiagnosticStatus.WARN, DiagnosticStatus.ERROR
 
@@ -99,7 +98,7 @@ class PlannerNode(Node):
         self._forecast = None  # (stamp_s, frame_id, ObstacleForecast) of the newest decodable cloud
         self._forecast_error = None  # why the newest cloud could not be decoded
         self._last_solve_s = None
-        self._last_warned = {}
+        self._warn = ThrottledWarnings(self.get_logger()).warn
 
         self.add_on_set_parameters_callback(self._on_set_parameters)
         reliable = QoSProfile(depth=10, reliability=ReliabilityPolicy.RELIABLE)
@@ -426,17 +425,6 @@ class PlannerNode(Node):
         if "reason" in full:
             full["reason"] = full.pop("reason")
         self._status_pub.publish(plan_messages.status_message(level, message, self.get_fully_qualified_name(), full))
-
-    def _warn(self, kind, message):
-        """Warn at most once per WARN_THROTTLE_S for each kind of problem.
-
-        Throttled per kind rather than per call site (as the logger's throttle_duration_sec does),
-        so one recurring problem does not hide a different one.
-        """
-        now = time.monotonic()
-        if now - self._last_warned.get(kind, -np.inf) >= WARN_THROTTLE_S:
-            self._last_warned[kind] = now
-            self.get_logger().warning(message)
 
 
 def main(args=None):

@@ -18,7 +18,6 @@ Run: python -m riskbound.ros.recorder_node --ros-args -p output:=out/run1 -p "to
 """
 
 import sys
-import time
 
 import rclpy
 from rclpy.exceptions import ParameterException
@@ -32,6 +31,7 @@ from riskbound.planning.settings import SettingSpec
 from riskbound.ros.message_types import message_class, qos_to_bag, subscription_qos
 from riskbound.ros.setting_parameters import declare_settings
 from riskbound.ros.string_list_parameter import declare_string_list
+from riskbound.ros.throttled_warnings import ThrottledWarnings
 
 NODE_NAME = "recorder"
 WARN_THROTTLE_S = 5.0
@@ -64,7 +64,7 @@ class RecorderNode(Node):
             output += default_bag_name()
         self.recorder = RawBagRecorder(output, storage=values["storage"])
         self._refused = set()
-        self._last_warned = {}
+        self._warn = ThrottledWarnings(self.get_logger(), WARN_THROTTLE_S).warn
         # Discovery runs on the steady clock: under use_sim_time a ROS-time timer would wait for a
         # /clock that may only start once this node records (a replay waiting for its subscriber).
         self.create_timer(values["discovery_period_s"], self._discover, clock=Clock(clock_type=ClockType.STEADY_TIME))
@@ -113,12 +113,6 @@ class RecorderNode(Node):
         self.recorder.close()
         counts = self.recorder.counts
         return f"wrote {sum(counts.values())} messages on {len(counts)} topics to {self.recorder.path}"
-
-    def _warn(self, kind, message):
-        now = time.monotonic()
-        if now - self._last_warned.get(kind, -float("inf")) >= WARN_THROTTLE_S:
-            self._last_warned[kind] = now
-            self.get_logger().warning(message)
 
 
 def main(args=None):

@@ -8,9 +8,7 @@ command_timeout_s is treated as zero velocity; command_latency_s delays every co
 Run: python -m riskbound.ros.sim_robot_node --ros-args -p robot_model:=unicycle
 """
 
-import math
 import sys
-import time
 
 from geometry_msgs.msg import TwistStamped
 from nav_msgs.msg import Odometry
@@ -24,9 +22,9 @@ from riskbound.motion.simulated_robot import (SIM_ROBOT_SPECS, SPECS_BY_NAME, Co
 from riskbound.ros.conversions import yaw_to_quaternion
 from riskbound.ros.setting_parameters import checked_changes, declare_settings
 from riskbound.ros.node_main import spin_node
+from riskbound.ros.throttled_warnings import ThrottledWarnings
 
 NODE_NAME = "sim_robot"
-WARN_THROTTLE_S = 2.0
 # Longest step integrated at once: after a pause (a suspended process, an overloaded machine) the
 # robot does not jump; the lost time is simply not simulated.
 MAX_STEPS_PER_TICK = 5
@@ -40,7 +38,7 @@ class SimRobotNode(Node):
         self._commands = CommandBuffer(self._settings.command_latency_s, self._settings.command_timeout_s)
         self._last_step_s = None
         self._obeying = False
-        self._last_warned = {}
+        self._warn = ThrottledWarnings(self.get_logger()).warn
         self.add_on_set_parameters_callback(self._on_set_parameters)
         self._odom_pub = self.create_publisher(Odometry, "odom", qos_profile_sensor_data)
         self.create_subscription(TwistStamped, "cmd_vel", self._on_cmd_vel,
@@ -110,13 +108,6 @@ class SimRobotNode(Node):
         msg.twist.twist.angular.z = float(robot.turn_rate)
         msg.twist.covariance = s.twist_covariance().ravel().tolist()
         return msg
-
-    def _warn(self, kind, message):
-        """At most one warning per WARN_THROTTLE_S for each kind of problem."""
-        now = time.monotonic()
-        if now - self._last_warned.get(kind, -math.inf) >= WARN_THROTTLE_S:
-            self._last_warned[kind] = now
-            self.get_logger().warning(message)
 
 
 def main(args=None):

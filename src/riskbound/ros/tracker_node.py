@@ -18,7 +18,6 @@ Run: python -m riskbound.ros.tracker_node --ros-args --params-file config/ground
 
 import logging
 import sys
-import time
 import traceback
 
 import numpy as np
@@ -36,6 +35,7 @@ from riskbound.ros.conversions import quaternion_to_yaw, seconds_to_stamp, stamp
 from riskbound.ros.forecast_codec import forecast_to_cloud
 from riskbound.ros.setting_parameters import checked_changes, declare_settings
 from riskbound.ros.node_main import spin_node
+from riskbound.ros.throttled_warnings import ThrottledWarnings
 from riskbound.tracking.gating import covariance_ellipses
 from riskbound.tracking.settings import TRACKER_SPECS, TrackerSettings
 from riskbound.tracking.tracker import MultiTargetTracker
@@ -48,7 +48,6 @@ NODE_SPECS = (
 )
 ALL_SPECS = {spec.name: spec for spec in TRACKER_SPECS + NODE_SPECS}
 TRACKER_NAMES = frozenset(spec.name for spec in TRACKER_SPECS)
-WARN_THROTTLE_S = 2.0
 # Probability mass inside the drawn covariance ellipses.
 MARKER_PROBABILITY = 0.95
 _CONFIRMED = ColorRGBA(r=0.1, g=0.55, b=1.0, a=0.45)
@@ -84,7 +83,7 @@ class TrackerNode(Node):
         if not self._planning_frame:
             raise ValueError("planning_frame='' is not allowed: must name a frame")
         self._tracker = MultiTargetTracker(TrackerSettings(**{name: values[name] for name in TRACKER_NAMES}))
-        self._last_warned = {}
+        self._warn = ThrottledWarnings(self.get_logger()).warn
         self._core_log = logging.getLogger("riskbound.tracking")
         self._core_log_handler = _NodeLogHandler(self.get_logger())
         self._core_log.addHandler(self._core_log_handler)
@@ -199,14 +198,6 @@ class TrackerNode(Node):
             path.points = [Point(x=float(p[0]), y=float(p[1]), z=0.0) for p in forecast.positions[j]]
             markers.append(path)
         return MarkerArray(markers=markers)
-
-    def _warn(self, kind, message):
-        """Warn at most once per WARN_THROTTLE_S for each kind of problem (one recurring problem
-        must not hide a different one, as a per-call-site throttle would)."""
-        now = time.monotonic()
-        if now - self._last_warned.get(kind, -np.inf) >= WARN_THROTTLE_S:
-            self._last_warned[kind] = now
-            self.get_logger().warning(message)
 
 
 def main(args=None):

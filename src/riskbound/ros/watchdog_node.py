@@ -19,7 +19,6 @@ Run: python -m riskbound.ros.watchdog_node --ros-args --params-file config/drone
 import logging
 import math
 import sys
-import time
 import traceback
 
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
@@ -34,13 +33,13 @@ from riskbound.motion.robot_models import VelocityCommand
 from riskbound.ros.conversions import stamp_to_seconds
 from riskbound.ros.setting_parameters import checked_changes, declare_settings
 from riskbound.ros.node_main import spin_node
+from riskbound.ros.throttled_warnings import ThrottledWarnings
 from riskbound.supervision.health import DEGRADED, HEALTHY, HealthMonitor, planner_status_from_values
 from riskbound.supervision.settings import SPECS_BY_NAME, WATCHDOG_SPECS, WatchdogSettings
 from riskbound.supervision.stop import ZERO_VELOCITY, stop_command
 
 NODE_NAME = "watchdog"
 DIAGNOSTIC_NAME = "riskbound watchdog"
-WARN_THROTTLE_S = 2.0
 _LEVELS = {HEALTHY: DiagnosticStatus.OK, DEGRADED: DiagnosticStatus.WARN}
 
 
@@ -83,7 +82,7 @@ class WatchdogNode(Node):
         self._published_s = None
         self._body_frame = ""  # the planner's command frame, else odometry's child frame
         self._last_stamps = {}
-        self._last_warned = {}
+        self._warn = ThrottledWarnings(self.get_logger()).warn
         self.add_on_set_parameters_callback(self._on_set_parameters)
         reliable = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE)
         self._cmd_pub = self.create_publisher(TwistStamped, "cmd_vel", reliable)
@@ -253,13 +252,6 @@ class WatchdogNode(Node):
         array = DiagnosticArray(status=[status])
         array.header.stamp = now.to_msg()
         self._diagnostics_pub.publish(array)
-
-    def _warn(self, kind, message):
-        """At most one warning per WARN_THROTTLE_S for each kind of problem."""
-        now = time.monotonic()
-        if now - self._last_warned.get(kind, -math.inf) >= WARN_THROTTLE_S:
-            self._last_warned[kind] = now
-            self.get_logger().warning(message)
 
 
 def main(args=None):
