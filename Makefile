@@ -39,6 +39,8 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/riskbound bench planner --out out/bench
+	$(BIN)/riskbound bench tracker --out out/bench
+	$(BIN)/riskbound bench compare --out out/bench
 
 clean:
 	rm -rf $(VENV) out build *.egg-info src/*.egg-info
