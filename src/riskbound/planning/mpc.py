@@ -1,10 +1,9 @@
 """Chance-constrained MPC: built once with CasADi, solved with IPOPT every control cycle.
 
-Decision vector, step by step: w = [x₀, u₀, x₁, u₁, …, x_{N−1}, u_{N−1}, x_N].
+The goal-tracking problem (cost, dynamics, limits) is riskbound.planning.problem's; this module adds,
+for every step k = 1…N and obstacle slot j, the ellipse constraint
 
-    minimise   Σ_{k<N} [ w_g ‖p_k − r‖² + w_s ‖v_k‖² + w_a a_k² (+ w_ω ω_k²) ] + w_T ‖p_N − r‖² + w_s ‖v_N‖²
-    subject to x₀ = current state,  x_{k+1} = f(x_k, u_k),  speed/acceleration/turn limits,
-               (p_k − o_jk)ᵀ A_jk (p_k − o_jk) ≥ 1   for k = 1…N and every obstacle slot j
+    (p_k − o_jk)ᵀ A_jk (p_k − o_jk) ≥ 1
 
 r is the goal clipped to the robot's reach. Obstacle centres o_jk and shape matrices A_jk (which
 carry the risk-dependent inflation), the reference and the weights are solver parameters, so a new
@@ -21,15 +20,11 @@ from riskbound.motion.covariance import propagate_along_trajectory
 from riskbound.motion.robot_models import make_robot_model
 from riskbound.planning.buffered_function import BufferedFunction
 from riskbound.planning.obstacle_constraints import build_obstacle_constraints
+from riskbound.planning.problem import motion_row_bounds, tracking_problem, variable_bounds, weight_values
 
 # IPOPT return statuses whose iterate we may use if it is also feasible.
 _CONVERGED = {"Solve_Succeeded", "Solved_To_Acceptable_Level"}
 _CAPPED = {"Maximum_Iterations_Exceeded", "Maximum_WallTime_Exceeded", "Maximum_CpuTime_Exceeded"}
-# Speed limit of the double integrator: the regular octagon inscribed in the disc ‖v‖ ≤ v_max,
-# written as |nᵢ·v| ≤ v_max cos(π/8) for four face normals. Linear rows keep the KKT system free of
-# the curvature that a quadratic ‖v‖² ≤ v_max² row adds; the inscribed octagon never exceeds v_max.
-SPEED_FACE_NORMALS = np.array([[np.cos(a), np.sin(a)] for a in np.arange(4) * np.pi / 4])
-SPEED_FACE_FACTOR = np.cos(np.pi / 8)
 # Largest constraint violation accepted in a returned plan (IPOPT's default constr_viol_tol).
 FEASIBILITY_TOLERANCE = 1e-4
 
@@ -66,35 +61,16 @@ class ChanceConstrainedMPC:
 
     def _build(self):
         s, model = self.settings, self.model
-        N, M, n, m, dt = s.horizon_steps, s.max_obstacles, model.state_dim, model.input_dim, s.step_s
-        X = [ca.SX.sym(f"x{k}", n) for k in range(N + 1)]
-        U = [ca.SX.sym(f"u{k}", m) for k in range(N)]
-        reference = ca.SX.sym("reference", 2)
-        weights = ca.SX.sym("weights", 5)  # goal, terminal, speed, accel, turn
+        N, M = s.horizon_steps, s.max_obstacles
+        X, U, w, reference, weights, cost, step_rows = tracking_problem(s, model)
         obstacle = ca.SX.sym("obstacle", 5, M * N)  # per (step, slot): o_x, o_y, A₁₁, A₁₂, A₂₂
-        w_goal, w_terminal, w_speed, w_accel, w_turn = (weights[i] for i in range(5))
-        unicycle = model.name == "unicycle"
-
-        def speed_sq(x):
-            return x[3] ** 2 if unicycle else ca.sumsqr(x[2:4])
-
-        def input_cost(u):
-            return w_accel * u[0] ** 2 + w_turn * u[1] ** 2 if unicycle else w_accel * ca.sumsqr(u)
-
-        cost = 0
         g = []
         for k in range(N):
-            cost += w_goal * ca.sumsqr(X[k][0:2] - reference) + w_speed * speed_sq(X[k]) + input_cost(U[k])
-            g.append(X[k + 1] - model.discrete_step(X[k], U[k], dt))
-            if not unicycle:
-                g.append(ca.mtimes(SPEED_FACE_NORMALS, X[k + 1][2:4]))
+            g.extend(step_rows[k])
             for j in range(M):
                 col = obstacle[:, k * M + j]
                 d = X[k + 1][0:2] - col[0:2]
                 g.append(col[2] * d[0] ** 2 + 2 * col[3] * d[0] * d[1] + col[4] * d[1] ** 2)
-        cost += w_terminal * ca.sumsqr(X[N][0:2] - reference) + w_speed * speed_sq(X[N])
-
-        w = ca.vertcat(*[ca.vertcat(X[k], U[k]) for k in range(N)], X[N])
         p = ca.vertcat(reference, weights, ca.vec(obstacle))
         g = ca.vertcat(*g)
         common = {
@@ -120,33 +96,17 @@ class ChanceConstrainedMPC:
         nlp = {"x": w, "f": cost, "g": g, "p": p}
         self._cold_solver = BufferedFunction(ca.nlpsol("chance_constrained_mpc_cold", "ipopt", nlp, common))
         self._warm_solver = BufferedFunction(ca.nlpsol("chance_constrained_mpc_warm", "ipopt", nlp, warm))
-        self._row = n + (0 if unicycle else len(SPEED_FACE_NORMALS)) + M  # constraint rows per step
-        self._n_w = w.shape[0]
-        self._n_g = g.shape[0]
+        self._row = g.shape[0] // N  # constraint rows per step: dynamics, speed, obstacle slots
 
     # --- bounds and parameters -------------------------------------------------------------------
 
     def _bounds(self, x0):
         s, model = self.settings, self.model
-        N, n, m, M = s.horizon_steps, model.state_dim, model.input_dim, s.max_obstacles
-        lbx = np.full((N + 1) * (n + m) - m, -np.inf)
-        ubx = np.full_like(lbx, np.inf)
-        lbx[:n] = ubx[:n] = x0
-        speed_rows = 0 if model.name == "unicycle" else len(SPEED_FACE_NORMALS)
-        face_speed = s.max_speed_mps * SPEED_FACE_FACTOR
-        row_lower = np.concatenate([np.zeros(n), np.full(speed_rows, -face_speed), np.ones(M)])
-        row_upper = np.concatenate([np.zeros(n), np.full(speed_rows, face_speed), np.full(M, np.inf)])
-        steps = np.arange(N)
-        inputs = steps * (n + m) + n  # index of the first input of every step
-        if model.name == "unicycle":
-            lbx[(steps + 1) * (n + m) + 3], ubx[(steps + 1) * (n + m) + 3] = s.min_speed_mps, s.max_speed_mps
-            lbx[inputs], ubx[inputs] = -s.max_accel_mps2, s.max_accel_mps2
-            lbx[inputs + 1], ubx[inputs + 1] = -s.max_turn_rate_radps, s.max_turn_rate_radps
-        else:
-            # Acceleration limit per axis (motor or tilt limits act per axis on most platforms).
-            for axis in range(m):
-                lbx[inputs + axis], ubx[inputs + axis] = -s.max_accel_mps2, s.max_accel_mps2
-        return lbx, ubx, np.tile(row_lower, N), np.tile(row_upper, N)
+        lbx, ubx = variable_bounds(s, model, x0)
+        motion_lower, motion_upper = motion_row_bounds(s, model)
+        row_lower = np.concatenate([motion_lower, np.ones(s.max_obstacles)])
+        row_upper = np.concatenate([motion_upper, np.full(s.max_obstacles, np.inf)])
+        return lbx, ubx, np.tile(row_lower, s.horizon_steps), np.tile(row_upper, s.horizon_steps)
 
     def _reference(self, position, goal):
         s = self.settings
@@ -233,8 +193,7 @@ class ChanceConstrainedMPC:
                              shapes[..., 0, 1], shapes[..., 1, 1]], axis=-1)  # (M, N, 5)
         obstacle = obstacle.transpose(1, 0, 2).reshape(N * M, 5)  # column k·M + j
         reference = self._reference(x0[0:2], goal)
-        weights = [s.weight_goal, s.weight_terminal, s.weight_speed, s.weight_accel, s.weight_turn]
-        p = np.concatenate([reference, weights, obstacle.ravel()])
+        p = np.concatenate([reference, weight_values(s), obstacle.ravel()])
         lbx, ubx, lbg, ubg = self._bounds(x0)
         args = {"x0": self._pack(guess_states, guess_inputs), "p": p, "lbx": lbx, "ubx": ubx,
                 "lbg": lbg, "ubg": ubg}

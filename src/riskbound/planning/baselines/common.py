@@ -16,12 +16,12 @@ every method is scored by one function.
 
 import time
 
-import casadi as ca
 import numpy as np
 
 from riskbound.motion.covariance import propagate_along_trajectory
 from riskbound.motion.robot_models import make_robot_model
-from riskbound.planning.mpc import FEASIBILITY_TOLERANCE, SPEED_FACE_FACTOR, SPEED_FACE_NORMALS, PlanResult
+from riskbound.planning.mpc import FEASIBILITY_TOLERANCE, PlanResult
+from riskbound.planning.problem import motion_row_bounds, tracking_problem, variable_bounds, weight_values
 
 
 def goal_reference(settings, position, goal):
@@ -77,67 +77,21 @@ class BaselinePlanner:
     # --- symbolic pieces -------------------------------------------------------------------------
 
     def _symbols(self):
-        """Decision variables, cost and per-step dynamics/speed rows, exactly as the MPC writes them."""
-        s, model = self.settings, self.model
-        N, n, m, dt = s.horizon_steps, model.state_dim, model.input_dim, s.step_s
-        X = [ca.SX.sym(f"x{k}", n) for k in range(N + 1)]
-        U = [ca.SX.sym(f"u{k}", m) for k in range(N)]
-        reference = ca.SX.sym("reference", 2)
-        weights = ca.SX.sym("weights", 5)  # goal, terminal, speed, accel, turn
-        w_goal, w_terminal, w_speed, w_accel, w_turn = (weights[i] for i in range(5))
-        unicycle = model.name == "unicycle"
-
-        def speed_sq(x):
-            return x[3] ** 2 if unicycle else ca.sumsqr(x[2:4])
-
-        def input_cost(u):
-            return w_accel * u[0] ** 2 + w_turn * u[1] ** 2 if unicycle else w_accel * ca.sumsqr(u)
-
-        cost = 0
-        step_rows = []
-        for k in range(N):
-            cost += w_goal * ca.sumsqr(X[k][0:2] - reference) + w_speed * speed_sq(X[k]) + input_cost(U[k])
-            rows = [X[k + 1] - model.discrete_step(X[k], U[k], dt)]
-            if not unicycle:
-                rows.append(ca.mtimes(SPEED_FACE_NORMALS, X[k + 1][2:4]))
-            step_rows.append(rows)
-        cost += w_terminal * ca.sumsqr(X[N][0:2] - reference) + w_speed * speed_sq(X[N])
-        w = ca.vertcat(*[ca.vertcat(X[k], U[k]) for k in range(N)], X[N])
-        return X, U, w, reference, weights, cost, step_rows
+        """Decision variables, cost and per-step dynamics/speed rows: the MPC's own problem."""
+        return tracking_problem(self.settings, self.model)
 
     # --- numbers ---------------------------------------------------------------------------------
 
     def _weights(self):
-        s = self.settings
-        return [s.weight_goal, s.weight_terminal, s.weight_speed, s.weight_accel, s.weight_turn]
+        return weight_values(self.settings)
 
     def _variable_bounds(self, x0):
         """Bounds on w (states and inputs) as in the MPC: x₀ fixed, input limits, unicycle speed."""
-        s, model = self.settings, self.model
-        N, n, m = s.horizon_steps, model.state_dim, model.input_dim
-        lbx = np.full((N + 1) * (n + m) - m, -np.inf)
-        ubx = np.full_like(lbx, np.inf)
-        lbx[:n] = ubx[:n] = x0
-        steps = np.arange(N)
-        inputs = steps * (n + m) + n
-        if model.name == "unicycle":
-            lbx[(steps + 1) * (n + m) + 3], ubx[(steps + 1) * (n + m) + 3] = s.min_speed_mps, s.max_speed_mps
-            lbx[inputs], ubx[inputs] = -s.max_accel_mps2, s.max_accel_mps2
-            lbx[inputs + 1], ubx[inputs + 1] = -s.max_turn_rate_radps, s.max_turn_rate_radps
-        else:
-            for axis in range(m):
-                lbx[inputs + axis], ubx[inputs + axis] = -s.max_accel_mps2, s.max_accel_mps2
-        return lbx, ubx
+        return variable_bounds(self.settings, self.model, x0)
 
     def _motion_row_bounds(self):
         """Lower and upper bounds of one step's dynamics and speed rows."""
-        n = self.model.state_dim
-        if self.model.name == "unicycle":
-            return np.zeros(n), np.zeros(n)
-        face_speed = self.settings.max_speed_mps * SPEED_FACE_FACTOR
-        speed_rows = len(SPEED_FACE_NORMALS)
-        return (np.concatenate([np.zeros(n), np.full(speed_rows, -face_speed)]),
-                np.concatenate([np.zeros(n), np.full(speed_rows, face_speed)]))
+        return motion_row_bounds(self.settings, self.model)
 
     def _unpack(self, w):
         n, m, N = self.model.state_dim, self.model.input_dim, self.settings.horizon_steps
