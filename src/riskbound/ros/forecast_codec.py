@@ -23,8 +23,8 @@ def _fields():
             for name in FIELD_NAMES]
 
 
-def forecast_to_cloud(forecast, header):
-    """Encode an ObstacleForecast (times relative to header.stamp) as a PointCloud2."""
+def forecast_points(forecast):
+    """The cloud's points (a POINT_DTYPE array, track-major) for an ObstacleForecast."""
     J, S = forecast.track_count, len(forecast.times)
     points = np.zeros(J * S, dtype=POINT_DTYPE)
     points["track_id"] = np.repeat(forecast.track_ids, S)
@@ -38,6 +38,13 @@ def forecast_to_cloud(forecast, header):
     points["cov_yy"] = forecast.covariances[..., 1, 1].ravel()
     points["half_length"] = np.repeat(forecast.half_extents[:, 0], S)
     points["half_width"] = np.repeat(forecast.half_extents[:, 1], S)
+    return points
+
+
+def forecast_to_cloud(forecast, header):
+    """Encode an ObstacleForecast (times relative to header.stamp) as a PointCloud2."""
+    J, S = forecast.track_count, len(forecast.times)
+    points = forecast_points(forecast)
     msg = PointCloud2()
     msg.header = header
     msg.height = 1

@@ -15,7 +15,7 @@ import numpy as np
 from riskbound.logs import bag_io
 from riskbound.logs.review import load
 from riskbound.motion.forecast import ObstacleForecast
-from riskbound.ros.forecast_codec import FIELD_NAMES, POINT_DTYPE
+from riskbound.ros.forecast_codec import FIELD_NAMES, POINT_DTYPE, forecast_points
 
 _T = bag_io.TYPESTORE.types
 _UINT32, _FLOAT32 = 6, 7  # sensor_msgs/PointField datatypes
@@ -112,18 +112,7 @@ def forecast_cloud_cdr(time_s, forecast, frame_id="odom"):
     """The obstacle_forecast PointCloud2 of riskbound.ros.forecast_codec, built with the bag type
     store (same field list, offsets and point layout as forecast_to_cloud)."""
     J, S = forecast.track_count, len(forecast.times)
-    points = np.zeros(J * S, dtype=POINT_DTYPE)
-    points["track_id"] = np.repeat(forecast.track_ids, S)
-    points["step"] = np.tile(np.arange(S), J)
-    points["t"] = np.tile(forecast.times, J)
-    points["x"] = forecast.positions[..., 0].ravel()
-    points["y"] = forecast.positions[..., 1].ravel()
-    points["yaw"] = forecast.headings.ravel()
-    points["cov_xx"] = forecast.covariances[..., 0, 0].ravel()
-    points["cov_xy"] = forecast.covariances[..., 0, 1].ravel()
-    points["cov_yy"] = forecast.covariances[..., 1, 1].ravel()
-    points["half_length"] = np.repeat(forecast.half_extents[:, 0], S)
-    points["half_width"] = np.repeat(forecast.half_extents[:, 1], S)
+    points = forecast_points(forecast)
     fields = [_T["sensor_msgs/msg/PointField"](name=name, offset=POINT_DTYPE.fields[name][1],
                                                 datatype=_UINT32 if name in ("track_id", "step") else _FLOAT32,
                                                 count=1) for name in FIELD_NAMES]
