@@ -57,7 +57,6 @@ class ChanceConstrainedMPC:
         self.model = make_robot_model(settings.robot_model)
         self._build()
         self._previous = None
-        self._previous_age_s = 0.0
 
     def _build(self):
         s, model = self.settings, self.model
@@ -134,7 +133,7 @@ class ChanceConstrainedMPC:
             inputs = np.zeros((N, self.model.input_dim))
             return self.model.rollout(x0, inputs, dt), inputs, None, None
         states, inputs, lam_x, lam_g, ids = self._previous
-        shift = int(np.clip(round((self._previous_age_s + elapsed_s) / dt), 0, N))
+        shift = int(np.clip(round(elapsed_s / dt), 0, N))
         idx = np.minimum(np.arange(N + 1) + shift, N)
         step_idx = np.minimum(np.arange(N) + shift, N - 1)
         states = states[idx].copy()
@@ -146,9 +145,8 @@ class ChanceConstrainedMPC:
         return states, inputs, lam_x, (lam_g, ids)
 
     def reset(self):
-        """Forget the warm start (after a goal change or a jump in odometry)."""
+        """Forget the warm start (after a failure, a goal change or a jump in odometry)."""
         self._previous = None
-        self._previous_age_s = 0.0
 
     # --- the cycle -------------------------------------------------------------------------------
 
@@ -239,13 +237,11 @@ class ChanceConstrainedMPC:
         if success:
             self._previous = (states, inputs, solution["lam_x"].copy(), solution["lam_g"].copy(),
                               constraints.track_ids.copy())
-            self._previous_age_s = 0.0
-        elif self._previous is not None:
-            # Keep the last good plan as the starting point, shifted by the time since it was made:
-            # a cold start after one missed cycle costs many more iterations than a stale warm start.
-            self._previous_age_s += elapsed_s
-            if self._previous_age_s > N * dt:
-                self.reset()
+        else:
+            # A failed cycle's iterate, or the last good plan shifted past it, often runs through the
+            # obstacle that made the cycle fail: measured in closed loop, restarting cold from the
+            # zero-input rollout fails far fewer of the following cycles.
+            self.reset()
         return result
 
     @staticmethod
