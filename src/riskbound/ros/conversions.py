@@ -30,5 +30,5 @@ def stamp_to_seconds(stamp):
 
 def seconds_to_stamp(seconds, stamp_type):
     """Float seconds → builtin_interfaces/Time (stamp_type is the message class)."""
-    sec = int(np.floor(seconds))
-    return stamp_type(sec=sec, nanosec=int(round((seconds - sec) * 1e9)) % 1_000_000_000)
+    total_ns = int(round(seconds * 1e9))
+    return stamp_type(sec=total_ns // 1_000_000_000, nanosec=total_ns % 1_000_000_000)
