@@ -20,7 +20,8 @@ from riskbound.motion.covariance import propagate_along_trajectory
 from riskbound.motion.robot_models import make_robot_model
 from riskbound.planning.buffered_function import BufferedFunction
 from riskbound.planning.obstacle_constraints import build_obstacle_constraints
-from riskbound.planning.problem import motion_row_bounds, tracking_problem, variable_bounds, weight_values
+from riskbound.planning.problem import (motion_row_bounds, pack_plan, tracking_problem, unpack_plan, variable_bounds,
+                                        weight_values)
 
 # IPOPT return statuses whose iterate we may use if it is also feasible.
 _CONVERGED = {"Solve_Succeeded", "Solved_To_Acceptable_Level"}
@@ -117,14 +118,11 @@ class ChanceConstrainedMPC:
     # --- warm start ------------------------------------------------------------------------------
 
     def _unpack(self, w):
-        n, m, N = self.model.state_dim, self.model.input_dim, self.settings.horizon_steps
-        body = np.asarray(w[: N * (n + m)]).reshape(N, n + m)
-        states = np.vstack([body[:, :n], np.asarray(w[N * (n + m):]).reshape(1, n)])
-        return states, body[:, n:]
+        return unpack_plan(w, self.model.state_dim, self.model.input_dim, self.settings.horizon_steps)
 
     @staticmethod
     def _pack(states, inputs):
-        return np.concatenate([np.hstack([states[:-1], inputs]).ravel(), states[-1]])
+        return pack_plan(states, inputs)
 
     def _initial_guess(self, x0, elapsed_s):
         """Shifted previous solution (states, inputs, multipliers) or a zero-input rollout."""

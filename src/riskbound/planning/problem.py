@@ -85,3 +85,17 @@ def motion_row_bounds(settings, model):
     rows = len(SPEED_FACE_NORMALS)
     return (np.concatenate([np.zeros(n), np.full(rows, -face_speed)]),
             np.concatenate([np.zeros(n), np.full(rows, face_speed)]))
+
+
+def pack_plan(states, inputs):
+    """w from states (N+1, n) and inputs (N, m), in the step-by-step order above."""
+    return np.concatenate([np.hstack([states[:-1], inputs]).ravel(), states[-1]])
+
+
+def unpack_plan(w, state_dim, input_dim, steps):
+    """States (N+1, n) and inputs (N, m) from the first (N+1)·n + N·m entries of w."""
+    w = np.asarray(w, dtype=float).ravel()
+    n, m, N = state_dim, input_dim, steps
+    body = w[: N * (n + m)].reshape(N, n + m)
+    states = np.vstack([body[:, :n], w[N * (n + m): N * (n + m) + n].reshape(1, n)])
+    return states, body[:, n:]

@@ -21,7 +21,8 @@ import numpy as np
 from riskbound.motion.covariance import propagate_along_trajectory
 from riskbound.motion.robot_models import make_robot_model
 from riskbound.planning.mpc import FEASIBILITY_TOLERANCE, PlanResult
-from riskbound.planning.problem import motion_row_bounds, tracking_problem, variable_bounds, weight_values
+from riskbound.planning.problem import (motion_row_bounds, pack_plan, tracking_problem, unpack_plan, variable_bounds,
+                                        weight_values)
 
 
 def goal_reference(settings, position, goal):
@@ -94,15 +95,11 @@ class BaselinePlanner:
         return motion_row_bounds(self.settings, self.model)
 
     def _unpack(self, w):
-        n, m, N = self.model.state_dim, self.model.input_dim, self.settings.horizon_steps
-        w = np.asarray(w, dtype=float).ravel()
-        body = w[: N * (n + m)].reshape(N, n + m)
-        states = np.vstack([body[:, :n], w[N * (n + m): N * (n + m) + n].reshape(1, n)])
-        return states, body[:, n:]
+        return unpack_plan(w, self.model.state_dim, self.model.input_dim, self.settings.horizon_steps)
 
     @staticmethod
     def _pack(states, inputs):
-        return np.concatenate([np.hstack([states[:-1], inputs]).ravel(), states[-1]])
+        return pack_plan(states, inputs)
 
     def _initial_guess(self, x0, elapsed_s):
         """Shifted previous plan, or the zero-input rollout (what the MPC starts from)."""
