@@ -14,6 +14,8 @@ import time
 
 import numpy as np
 
+from riskbound.bench.time_histogram import write_time_histogram
+
 TARGET_MEDIAN_MS = 5.0
 TARGET_P99_MS = 20.0
 
@@ -86,26 +88,9 @@ def run(args):
     with open(json_path, "w") as handle:
         json.dump(report, handle, indent=2)
     png_path = os.path.join(args.out, "planner_solve_ms.png")
-    _plot(samples, png_path)
+    write_time_histogram({f"{walkers} walkers": values for walkers, values in samples.items()}, png_path,
+                         TARGET_MEDIAN_MS, f"{TARGET_MEDIAN_MS} ms", "solve time per cycle [ms]", "cycles",
+                         "planner solve time in closed loop")
     print(f"wrote {json_path} and {png_path}")
     return 0
 
-
-def _plot(samples, path):
-    import matplotlib
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    fig, ax = plt.subplots(figsize=(7, 4))
-    upper = max(np.percentile(v, 99.5) for v in samples.values())
-    bins = np.linspace(0.0, upper, 60)
-    for walkers, values in samples.items():
-        ax.hist(np.clip(values, 0, upper), bins=bins, histtype="step", linewidth=1.5, label=f"{walkers} walkers")
-    ax.axvline(TARGET_MEDIAN_MS, color="grey", linestyle="--", linewidth=1, label=f"{TARGET_MEDIAN_MS} ms")
-    ax.set_xlabel("solve time per cycle [ms]")
-    ax.set_ylabel("cycles")
-    ax.set_title("planner solve time in closed loop")
-    ax.legend()
-    fig.tight_layout()
-    fig.savefig(path, dpi=120)
-    plt.close(fig)

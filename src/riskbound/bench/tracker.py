@@ -18,6 +18,8 @@ import time
 
 import numpy as np
 
+from riskbound.bench.time_histogram import write_time_histogram
+
 TARGET_MEDIAN_MS = 2.0
 
 
@@ -135,27 +137,9 @@ def run(args):
     with open(json_path, "w") as handle:
         json.dump(report, handle, indent=2)
     png_path = os.path.join(args.out, "tracker_ms.png")
-    _plot({model: r["total_ms"] for model, r in results.items()}, png_path)
+    write_time_histogram({model: r["total_ms"] for model, r in results.items()}, png_path, TARGET_MEDIAN_MS,
+                         f"target median {TARGET_MEDIAN_MS} ms", "update + forecast per scan [ms]", "scans",
+                         "tracker time per scan")
     print(f"wrote {json_path} and {png_path}")
     return 0
 
-
-def _plot(samples, path):
-    import matplotlib
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    fig, ax = plt.subplots(figsize=(7, 4))
-    upper = max(np.percentile(v, 99.5) for v in samples.values())
-    bins = np.linspace(0.0, upper, 60)
-    for model, values in samples.items():
-        ax.hist(np.clip(values, 0, upper), bins=bins, histtype="step", linewidth=1.5, label=model)
-    ax.axvline(TARGET_MEDIAN_MS, color="grey", linestyle="--", linewidth=1,
-               label=f"target median {TARGET_MEDIAN_MS} ms")
-    ax.set_xlabel("update + forecast per scan [ms]")
-    ax.set_ylabel("scans")
-    ax.set_title("tracker time per scan")
-    ax.legend()
-    fig.tight_layout()
-    fig.savefig(path, dpi=120)
-    plt.close(fig)
