@@ -20,8 +20,8 @@ from riskbound.motion.covariance import propagate_along_trajectory
 from riskbound.motion.robot_models import make_robot_model
 from riskbound.planning.buffered_function import BufferedFunction
 from riskbound.planning.obstacle_constraints import build_obstacle_constraints
-from riskbound.planning.problem import (motion_row_bounds, pack_plan, tracking_problem, unpack_plan, variable_bounds,
-                                        weight_values)
+from riskbound.planning.problem import (motion_row_bounds, pack_plan, shift_indices, tracking_problem, unpack_plan,
+                                        variable_bounds, weight_values)
 
 # IPOPT return statuses whose iterate we may use if it is also feasible.
 _CONVERGED = {"Solve_Succeeded", "Solved_To_Acceptable_Level"}
@@ -131,9 +131,7 @@ class ChanceConstrainedMPC:
             inputs = np.zeros((N, self.model.input_dim))
             return self.model.rollout(x0, inputs, dt), inputs, None, None
         states, inputs, lam_x, lam_g, ids = self._previous
-        shift = int(np.clip(round(elapsed_s / dt), 0, N))
-        idx = np.minimum(np.arange(N + 1) + shift, N)
-        step_idx = np.minimum(np.arange(N) + shift, N - 1)
+        idx, step_idx = shift_indices(N, elapsed_s, dt)
         states = states[idx].copy()
         inputs = inputs[step_idx].copy()
         states[0] = x0

@@ -99,3 +99,12 @@ def unpack_plan(w, state_dim, input_dim, steps):
     body = w[: N * (n + m)].reshape(N, n + m)
     states = np.vstack([body[:, :n], w[N * (n + m): N * (n + m) + n].reshape(1, n)])
     return states, body[:, n:]
+
+
+def shift_indices(steps, elapsed_s, step_s):
+    """Indices that move a plan forward by the elapsed time (whole steps, the last one held).
+
+    Returns (state_indices (N+1,), step_indices (N,)) to take from the previous states and inputs.
+    """
+    shift = int(np.clip(round(elapsed_s / step_s), 0, steps))
+    return (np.minimum(np.arange(steps + 1) + shift, steps), np.minimum(np.arange(steps) + shift, steps - 1))

@@ -21,8 +21,8 @@ import numpy as np
 from riskbound.motion.covariance import propagate_along_trajectory
 from riskbound.motion.robot_models import make_robot_model
 from riskbound.planning.mpc import FEASIBILITY_TOLERANCE, PlanResult
-from riskbound.planning.problem import (motion_row_bounds, pack_plan, tracking_problem, unpack_plan, variable_bounds,
-                                        weight_values)
+from riskbound.planning.problem import (motion_row_bounds, pack_plan, shift_indices, tracking_problem, unpack_plan,
+                                        variable_bounds, weight_values)
 
 
 def goal_reference(settings, position, goal):
@@ -108,9 +108,9 @@ class BaselinePlanner:
             inputs = np.zeros((N, self.model.input_dim))
             return self.model.rollout(x0, inputs, dt), inputs
         states, inputs = self._previous
-        shift = int(np.clip(round(elapsed_s / dt), 0, N))
-        states = states[np.minimum(np.arange(N + 1) + shift, N)].copy()
-        inputs = inputs[np.minimum(np.arange(N) + shift, N - 1)].copy()
+        state_idx, step_idx = shift_indices(N, elapsed_s, dt)
+        states = states[state_idx].copy()
+        inputs = inputs[step_idx].copy()
         states[0] = x0
         return states, inputs
 
