@@ -89,6 +89,42 @@ def test_pedestrian_force_is_minus_the_gradient_of_the_elliptic_potential(r, v_b
     np.testing.assert_allclose(force, -gradient, rtol=1e-5, atol=1e-9)
 
 
+def test_repulsion_saturates_at_contact():
+    # Two walkers at rest (s = 0, so b = |r|), radii 0.25 m: at contact the gap is zero and the
+    # magnitude is V⁰/σ = 2.1 / 0.3 = 7 m/s² (published values, Phys. Rev. E 51, 4282 (1995), value
+    # from memory). An overlap keeps that magnitude; a gap of σ divides it by e.
+    def magnitude(distance):
+        positions = np.array([[distance, 0.0], [0.0, 0.0]])
+        directions = np.array([[-1.0, 0.0], [1.0, 0.0]])
+        force = pedestrian_forces(positions, np.zeros((2, 2)), directions, np.full(2, 0.25), PARAMS)[0]
+        return np.linalg.norm(force)
+
+    assert magnitude(0.5) == pytest.approx(7.0, rel=1e-9)
+    assert magnitude(0.3) == pytest.approx(7.0, rel=1e-9)
+    assert magnitude(0.8) == pytest.approx(7.0 / np.e, rel=1e-9)
+
+
+@pytest.mark.parametrize("limit", [5.0, 2.0])
+def test_interaction_acceleration_is_bounded_and_the_published_model_is_not(limit):
+    # Four walkers at rest, each aiming at the spot where it stands (so the driving term is zero),
+    # three of them pressed against the west side of the fourth: over one short step the velocity
+    # change is the interaction term alone, τf(1 − e^(−h/τ)).
+    positions = np.array([[0.0, 0.0], [-0.5, 0.0], [-0.42, 0.3], [-0.42, -0.3]])
+    zeros = np.zeros((4, 2))
+    dt = 0.01
+
+    def largest_acceleration(params):
+        _, velocities, _ = step(positions, zeros, positions, np.full(4, 1.34), np.full(4, 0.25),
+                                OPEN_FIELD, params, dt)
+        return np.max(np.linalg.norm(velocities, axis=1)) / dt
+
+    unbounded = largest_acceleration(SocialForceParameters(max_interaction_accel_mps2=float("inf")))
+    bounded = largest_acceleration(SocialForceParameters(max_interaction_accel_mps2=limit))
+    assert unbounded > 2.0 * limit  # the configuration really pushes harder than the bound
+    assert bounded <= limit * (1.0 + 1e-9)
+    assert bounded >= 0.98 * limit  # τ(1 − e^(−h/τ))/h = 0.990 for h = 0.01 s, τ = 0.5 s
+
+
 def test_someone_behind_counts_with_the_published_weight():
     # Outside the 200° field of view the force is multiplied by c = 0.5, Phys. Rev. E 51, 4282 (1995).
     positions = np.array([[0.0, 0.0], [-1.0, 0.0]])
