@@ -13,7 +13,7 @@ from scipy.optimize import brentq
 from scipy.stats import norm
 
 from riskbound.motion.forecast import ObstacleForecast
-from riskbound.planning.mpc import ChanceConstrainedMPC
+from riskbound.planning.mpc import VIOLATION_PENALTY, ChanceConstrainedMPC
 from riskbound.planning.settings import PlannerSettings
 
 N, DT = 20, 0.1
@@ -264,6 +264,53 @@ def test_obstacle_on_the_robot_is_infeasible_without_exception(planner):
     # The planner recovers on the next cycle once the input is sane again.
     recovered = mpc.solve(x0, P0, GOAL, scene())
     assert recovered.success, recovered.status
+
+
+@pytest.fixture(scope="module", params=["double_integrator", "unicycle"])
+def hard_and_soft(request):
+    hard = BASE.with_changes(robot_model=request.param)
+    soft = hard.with_changes(infeasible_response="least_violation")
+    return hard, ChanceConstrainedMPC(hard), ChanceConstrainedMPC(soft)
+
+
+def test_least_violation_gives_the_hard_plan_when_one_exists(hard_and_soft):
+    # Exact L1 penalty: when the hard problem is feasible and ρ exceeds its largest constraint
+    # multiplier, its solution solves the penalised problem too (Numerical Optimization, 2nd ed.,
+    # 2006, Sec. 17.2, Theorem 17.3, value from memory). Checked on the four-walker scene.
+    settings, hard, soft = hard_and_soft
+    hard.reset()
+    soft.reset()
+    expected = hard.solve(X0, P0, GOAL, scene())
+    got = soft.solve(X0, P0, GOAL, scene())
+    assert expected.status == "solved" and got.status == "solved", (expected.status, got.status)
+    obstacle_multipliers = hard._previous[3].reshape(N, -1)[:, -settings.max_obstacles:]
+    assert np.max(np.abs(obstacle_multipliers)) < VIOLATION_PENALTY / 10  # the theorem's condition, with margin
+    assert np.max(np.abs(obstacle_multipliers)) > 1e-3  # an ellipse is active: the check has teeth
+    assert got.max_violation <= 1e-4
+    np.testing.assert_allclose(got.states, expected.states, atol=2e-3)
+    assert got.cost == pytest.approx(expected.cost, rel=1e-3)
+
+
+def test_least_violation_moves_away_from_an_obstacle_on_the_robot(hard_and_soft):
+    # A walker standing where the robot is: no plan meets its ellipse (the hard problem fails and
+    # the robot would be stopped). The least-violation plan is a usable motion that leaves it.
+    settings, hard, soft = hard_and_soft
+    hard.reset()
+    soft.reset()
+    times = DT * np.arange(1, N + 1)
+    on_robot = ObstacleForecast([5], times, np.tile([[0.1, 0.05]], (1, N, 1)), np.zeros((1, N)),
+                                np.tile(0.01 * np.eye(2), (1, N, 1, 1)), [[0.3, 0.3]])
+    assert hard.solve(X0, P0, GOAL, on_robot).success is False
+    result = soft.solve(X0, P0, GOAL, on_robot)
+    assert result.success and result.status == "least_violation", result.status
+    assert result.max_violation > 0.1 and result.min_margin_m < 0.0
+    assert_dynamics_and_bounds(soft.model, settings, result, X0)
+    distance = np.linalg.norm(result.states[:, 0:2] - [0.1, 0.05], axis=1)
+    assert distance[-1] > distance[0] + 0.5
+    forms = quadratic_forms(result, result.constraints.shapes[result.constraints.used])
+    assert forms[0, -1] > forms[0, 0]  # deeper inside at the start than at the end
+    # The next cycle, with the obstacle gone, is an ordinary solve again.
+    assert soft.solve(X0, P0, GOAL, scene()).status == "solved"
 
 
 @pytest.mark.parametrize("what", ["state", "covariance", "goal", "forecast_nan", "forecast_grid"])

@@ -188,6 +188,22 @@ def test_degraded_recovers_after_k_fault_free_cycles():
     assert verdict.state == HEALTHY and verdict.transition.previous == DEGRADED
 
 
+def test_least_violation_plan_goes_to_the_robot_degraded_and_its_solve_time_counts():
+    # infeasible_response least_violation: the planner commands the plan that violates its obstacle
+    # constraints least, at level WARN; the watchdog passes it degraded and counts its solve time.
+    clocked = Clocked(recovery_cycles=2)
+    clocked.run_healthy()
+    status, problems = planner_status_from_values(LEVEL_WARN, {"solve_ms": "31.0", "status": "least_violation",
+                                                               "reason": "no plan meets every obstacle constraint"})
+    assert problems == [] and status.solve_ms == 31.0
+    verdict = clocked.cycle(status=status)
+    assert verdict.state == DEGRADED and verdict.forward and verdict.transition.cause == "planner_warning"
+    assert clocked.monitor.statistics.summary().max_ms == 31.0
+    # The same plan reported at level ERROR (a planner without that response) stops the robot.
+    verdict = clocked.cycle(status=PlannerStatus(level=LEVEL_ERROR, status="infeasible", solve_ms=31.0))
+    assert verdict.state == STOPPED and not verdict.forward
+
+
 def test_stop_is_latched_and_any_fault_restarts_the_recovery_count():
     k = 5
     clocked = Clocked(recovery_cycles=k)

@@ -8,6 +8,20 @@ for every step k = 1…N and obstacle slot j, the ellipse constraint
 r is the goal clipped to the robot's reach. Obstacle centres o_jk and shape matrices A_jk (which
 carry the risk-dependent inflation), the reference and the weights are solver parameters, so a new
 risk level or new weights need no rebuild; horizon, step, model, slot count and solver caps do.
+
+When no plan meets every ellipse constraint (a walker's ellipse already covers every place the
+robot can reach in one step), `infeasible_response` decides:
+
+* stop (default): the cycle fails (status infeasible); the planner node sends no command and the
+  watchdog stops the robot.
+* least_violation: the ellipse rows are softened with one slack s_jk ≥ 0 each,
+  (p_k − o_jk)ᵀ A_jk (p_k − o_jk) + s_jk ≥ 1, and ρ Σ s_jk is added to the cost (an exact L1
+  penalty: for ρ above the largest constraint multiplier, a solution of the hard problem is a
+  solution of the soft one, Numerical Optimization, 2nd ed., 2006, Sec. 17.2, Theorem 17.3, value
+  from memory; see VIOLATION_PENALTY). Plans with every slack at zero are reported as before; a
+  plan with a positive slack is the motion that leaves the ellipses with the least total
+  violation, reported with status least_violation. The chance constraint does not hold for such a plan; it is for robots among
+  people who may not react to it, where standing still in a walker's path is the worse choice.
 """
 
 import time
@@ -28,6 +42,13 @@ _CONVERGED = {"Solve_Succeeded", "Solved_To_Acceptable_Level"}
 _CAPPED = {"Maximum_Iterations_Exceeded", "Maximum_WallTime_Exceeded", "Maximum_CpuTime_Exceeded"}
 # Largest constraint violation accepted in a returned plan (IPOPT's default constr_viol_tol).
 FEASIBILITY_TOLERANCE = 1e-4
+# ρ of the least_violation response, per unit of ellipse-row violation. The multipliers of the
+# ellipse rows are the cost's sensitivity to pushing a plan out by one unit of dᵀAd: with the
+# default weights and a goal 5 m away they reach 31 (test_mpc_obstacles), so 1e3 keeps the
+# penalty exact with a wide margin. Weights a hundred times the defaults could make a multiplier
+# exceed ρ; the plan would then enter an ellipse although it need not, and is reported as
+# least_violation all the same (the status is decided from the slacks, not assumed).
+VIOLATION_PENALTY = 1e3
 
 
 @dataclass
@@ -44,6 +65,7 @@ class PlanResult:
     obstacles_dropped: int = 0
     risk_per_constraint: float = float("nan")
     min_margin_m: float = float("inf")
+    max_violation: float = 0.0  # least_violation: largest ellipse-row slack, 1 − dᵀAd (0: constraints met)
     times: np.ndarray = field(default_factory=lambda: np.zeros(0))
     states: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
     inputs: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
@@ -56,6 +78,7 @@ class ChanceConstrainedMPC:
     def __init__(self, settings):
         self.settings = settings
         self.model = make_robot_model(settings.robot_model)
+        self.soft = settings.infeasible_response == "least_violation"
         self._build()
         self._previous = None
 
@@ -64,13 +87,20 @@ class ChanceConstrainedMPC:
         N, M = s.horizon_steps, s.max_obstacles
         X, U, w, reference, weights, cost, step_rows = tracking_problem(s, model)
         obstacle = ca.SX.sym("obstacle", 5, M * N)  # per (step, slot): o_x, o_y, A₁₁, A₁₂, A₂₂
+        # Slack of every ellipse row (column k·M + j), appended to w; none unless least_violation.
+        slack = ca.SX.sym("slack", M * N if self.soft else 0)
         g = []
         for k in range(N):
             g.extend(step_rows[k])
             for j in range(M):
                 col = obstacle[:, k * M + j]
                 d = X[k + 1][0:2] - col[0:2]
-                g.append(col[2] * d[0] ** 2 + 2 * col[3] * d[0] * d[1] + col[4] * d[1] ** 2)
+                q = col[2] * d[0] ** 2 + 2 * col[3] * d[0] * d[1] + col[4] * d[1] ** 2
+                g.append(q + slack[k * M + j] if self.soft else q)
+        if self.soft:
+            w = ca.vertcat(w, slack)
+            cost += VIOLATION_PENALTY * ca.sum1(slack)
+        self._plan_size = w.shape[0] - slack.shape[0]
         p = ca.vertcat(reference, weights, ca.vec(obstacle))
         g = ca.vertcat(*g)
         common = {
@@ -106,6 +136,9 @@ class ChanceConstrainedMPC:
         motion_lower, motion_upper = motion_row_bounds(s, model)
         row_lower = np.concatenate([motion_lower, np.ones(s.max_obstacles)])
         row_upper = np.concatenate([motion_upper, np.full(s.max_obstacles, np.inf)])
+        if self.soft:
+            slack_count = s.horizon_steps * s.max_obstacles
+            lbx, ubx = np.concatenate([lbx, np.zeros(slack_count)]), np.concatenate([ubx, np.full(slack_count, np.inf)])
         return lbx, ubx, np.tile(row_lower, s.horizon_steps), np.tile(row_upper, s.horizon_steps)
 
     def _reference(self, position, goal):
@@ -125,20 +158,25 @@ class ChanceConstrainedMPC:
         return pack_plan(states, inputs)
 
     def _initial_guess(self, x0, elapsed_s):
-        """Shifted previous solution (states, inputs, multipliers) or a zero-input rollout."""
+        """Shifted previous solution (states, inputs, multipliers) or a zero-input rollout.
+
+        Returns (states, inputs, lam_x, lam_g, previous track ids, slack multipliers (N, M)); the
+        last four are None for a cold start.
+        """
         N, dt = self.settings.horizon_steps, self.settings.step_s
         if self._previous is None:
             inputs = np.zeros((N, self.model.input_dim))
-            return self.model.rollout(x0, inputs, dt), inputs, None, None
+            return self.model.rollout(x0, inputs, dt), inputs, None, None, None, None
         states, inputs, lam_x, lam_g, ids = self._previous
         idx, step_idx = shift_indices(N, elapsed_s, dt)
         states = states[idx].copy()
         inputs = inputs[step_idx].copy()
         states[0] = x0
         lam_states, lam_inputs = self._unpack(lam_x)
+        lam_slack = lam_x[self._plan_size:].reshape(N, -1)[step_idx]
         lam_x = self._pack(lam_states[idx], lam_inputs[step_idx])
         lam_g = lam_g.reshape(N, self._row)[step_idx].ravel()
-        return states, inputs, lam_x, (lam_g, ids)
+        return states, inputs, lam_x, lam_g, ids, lam_slack
 
     def reset(self):
         """Forget the warm start (after a failure, a goal change or a jump in odometry)."""
@@ -178,7 +216,7 @@ class ChanceConstrainedMPC:
 
         started = time.perf_counter()
         elapsed_s = dt if elapsed_s is None else elapsed_s
-        guess_states, guess_inputs, lam_x, lam_g_ids = self._initial_guess(x0, elapsed_s)
+        guess_states, guess_inputs, lam_x, lam_g, previous_ids, lam_slack = self._initial_guess(x0, elapsed_s)
         robot_cov = propagate_along_trajectory(model, guess_states, guess_inputs, dt, P0,
                                                s.robot_accel_noise, s.robot_turn_noise)[1:, 0:2, 0:2]
         constraints = build_obstacle_constraints(forecast, robot_cov, x0[0:2], s)
@@ -189,14 +227,22 @@ class ChanceConstrainedMPC:
         reference = self._reference(x0[0:2], goal)
         p = np.concatenate([reference, weight_values(s), obstacle.ravel()])
         lbx, ubx, lbg, ubg = self._bounds(x0)
-        args = {"x0": self._pack(guess_states, guess_inputs), "p": p, "lbx": lbx, "ubx": ubx,
-                "lbg": lbg, "ubg": ubg}
+        guess = self._pack(guess_states, guess_inputs)
+        if self.soft:
+            # Each slack starts at the violation of the guess (zero where the guess is clear).
+            d = guess_states[None, 1:, 0:2] - constraints.centres
+            q = np.einsum("jki,jkil,jkl->kj", d, shapes, d)  # (N, M), column order k·M + j
+            guess = np.concatenate([guess, np.maximum(1.0 - q, 0.0).ravel()])
+        args = {"x0": guess, "p": p, "lbx": lbx, "ubx": ubx, "lbg": lbg, "ubg": ubg}
         if lam_x is not None:
-            lam_g, previous_ids = lam_g_ids
             lam_g = lam_g.reshape(N, self._row).copy()
             same_obstacle = constraints.track_ids == previous_ids
             obstacle_cols = lam_g[:, self._row - M:]
             obstacle_cols[:, ~same_obstacle] = 0.0
+            if self.soft:
+                lam_slack = lam_slack.copy()
+                lam_slack[:, ~same_obstacle] = 0.0
+                lam_x = np.concatenate([lam_x, lam_slack.ravel()])
             args["lam_x0"], args["lam_g0"] = lam_x, lam_g.ravel()
 
         solver = self._cold_solver if lam_x is None else self._warm_solver
@@ -210,6 +256,8 @@ class ChanceConstrainedMPC:
                         np.max(lbx - w, initial=0.0), np.max(w - ubx, initial=0.0))
         finite = np.all(np.isfinite(w))
         feasible = finite and violation <= FEASIBILITY_TOLERANCE
+        # Largest softened ellipse violation (least_violation only): the plan enters an ellipse.
+        softened = float(np.max(w[self._plan_size:], initial=0.0)) if finite else float("nan")
         if solver_status in _CONVERGED and feasible:
             status = "solved"
         elif solver_status in _CAPPED and feasible:
@@ -220,12 +268,16 @@ class ChanceConstrainedMPC:
             status = "infeasible"
         else:
             status = "solver_failed"
-        success = status in ("solved", "feasible_not_converged")
+        if status in ("solved", "feasible_not_converged") and softened > FEASIBILITY_TOLERANCE:
+            status = "least_violation"  # a usable motion, but it enters at least one ellipse
+        success = status in ("solved", "feasible_not_converged", "least_violation")
 
         states, inputs = self._unpack(w)
         result = PlanResult(
             success=success, status=status, solver_status=solver_status, solve_ms=solve_ms,
-            iterations=int(stats.get("iter_count", 0)), cost=float(solution["f"][0]),
+            iterations=int(stats.get("iter_count", 0)),
+            cost=float(solution["f"][0]) - VIOLATION_PENALTY * float(np.sum(w[self._plan_size:])),
+            max_violation=softened,
             obstacles_considered=constraints.considered, obstacles_dropped=constraints.dropped,
             risk_per_constraint=constraints.risk,
             min_margin_m=self._min_margin(states, constraints) if finite else float("nan"),

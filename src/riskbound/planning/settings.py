@@ -12,6 +12,9 @@ from dataclasses import dataclass, fields, replace
 from riskbound.motion.robot_models import ROBOT_MODELS
 from riskbound.risk.allocation import ALLOCATION_MODES
 
+# What the planner does when no plan meets every obstacle constraint (see riskbound.planning.mpc).
+INFEASIBLE_RESPONSES = ("stop", "least_violation")
+
 
 @dataclass(frozen=True)
 class SettingSpec:
@@ -104,6 +107,11 @@ PLANNER_SPECS = (
     SettingSpec("solver_time_fraction", 0.8, "IPOPT wall-time cap as a fraction of the control period",
                 0.05, 1.0, rebuild=True),
     SettingSpec("solver_tolerance", 1e-4, "IPOPT convergence tolerance", 1e-10, 1e-1, rebuild=True),
+    SettingSpec("infeasible_response", "stop",
+                "when no plan meets every obstacle constraint — stop: send no command (the watchdog stops "
+                "the robot); least_violation: command the plan that violates the constraints least "
+                "(status least_violation, level WARN; the risk bound does not hold for it)",
+                choices=INFEASIBLE_RESPONSES, rebuild=True),
 )
 
 SPECS_BY_NAME = {spec.name: spec for spec in PLANNER_SPECS}
@@ -136,6 +144,7 @@ class PlannerSettings:
     solver_max_iter: int = 100
     solver_time_fraction: float = 0.8
     solver_tolerance: float = 1e-4
+    infeasible_response: str = "stop"
 
     def __post_init__(self):
         validate_fields(self, SPECS_BY_NAME)

@@ -309,9 +309,17 @@ class PlannerNode(Node):
         self._cmd_pub.publish(plan_messages.command_to_twist(command, body_frame, stamp))
         level = _LEVEL_OK if result.status == "solved" else _LEVEL_WARN
         message = f"{result.status} in {result.solve_ms:.1f} ms, {result.iterations} iterations"
+        if result.status == "least_violation":
+            # infeasible_response least_violation: a usable motion, but not within the risk bound.
+            values["max_violation"] = result.max_violation
+            values["reason"] = (f"no plan meets every obstacle constraint: commanding the least-violation plan "
+                                f"(largest ellipse violation {result.max_violation:.2f}, margin "
+                                f"{result.min_margin_m:.2f} m); the risk bound does not hold for it")
+            message += "; " + values["reason"]
+            self._warn("least_violation", values["reason"])
         if forecast_note:
             level = _LEVEL_WARN
-            values["reason"] = forecast_note
+            values["reason"] = values["reason"] + "; " + forecast_note if "reason" in values else forecast_note
             message += f"; {forecast_note}"
             self._warn("forecast_ignored", forecast_note)
         self._publish_status(level, message, values)

@@ -16,7 +16,11 @@ and finds the faults present now:
                       command_invalid       the planned command holds NaN or Inf
                       command_out_of_limit  planned speed or turn rate above the configured limits
     degrading faults  deadline_miss         the latest solve took longer than the deadline
-                      planner_warning       the planner reports level WARN
+                      planner_warning       the planner reports level WARN (among them status
+                                            least_violation: with infeasible_response
+                                            least_violation the planner commands the plan that
+                                            violates its obstacle constraints least; it goes to
+                                            the robot, degraded, like any warned plan)
 
     healthy  ──degrading fault──► degraded   (the command still goes to the robot)
     healthy/degraded ──stopping fault──► stopped   (a stop goes to the robot; latched)
@@ -51,7 +55,7 @@ LEVEL_OK, LEVEL_WARN, LEVEL_ERROR, LEVEL_STALE = 0, 1, 2, 3
 FAILED_PLAN_STATUSES = frozenset({"infeasible", "solver_failed", "time_or_iteration_cap"})
 # Statuses of a cycle that ran the solver; others (no goal, goal reached, stale input, ...) carry
 # no solve time worth counting. A status without a `status` key is taken as a solve.
-SOLVE_STATUSES = FAILED_PLAN_STATUSES | {"solved", "feasible_not_converged", ""}
+SOLVE_STATUSES = FAILED_PLAN_STATUSES | {"solved", "feasible_not_converged", "least_violation", ""}
 
 # Absolute slack on the speed and turn-rate limits: the solver accepts constraint violations up to
 # 1e-4 (IPOPT's constr_viol_tol), which must not stop the robot.
