@@ -5,7 +5,11 @@ the planner may drive: if so it republishes the planner's latest cmd_vel_plan, o
 (riskbound.supervision.stop: zero, or a ramp within the deceleration limits), latched until
 recovery_cycles fault-free cycles in a row. Between control cycles it checks for stopping faults
 at check_rate_hz and sends the stop at once, so a fault stops the robot within its staleness limit
-plus one check period, well inside the required limit plus one control period. It publishes
+plus one check period, well inside the required limit plus one control period. A planned command
+is also forwarded the moment it arrives when the robot is not stopped and no stopping fault is
+present: waiting for the next control cycle would add up to one control period of latency between
+the plan and the robot (measured in the closed loop on the replayed crowd: a walker 0.1 s closer
+than planned for). It publishes
 /diagnostics (one DiagnosticStatus, level OK/WARN/ERROR for healthy/degraded/stopped) at
 diagnostics_rate_hz and at every transition.
 
@@ -34,7 +38,7 @@ from riskbound.ros.conversions import stamp_to_seconds
 from riskbound.ros.setting_parameters import checked_changes, declare_settings
 from riskbound.ros.node_main import spin_node
 from riskbound.ros.throttled_warnings import ThrottledWarnings
-from riskbound.supervision.health import DEGRADED, HEALTHY, HealthMonitor, planner_status_from_values
+from riskbound.supervision.health import DEGRADED, HEALTHY, STOPPED, HealthMonitor, planner_status_from_values
 from riskbound.supervision.settings import SPECS_BY_NAME, WATCHDOG_SPECS, WatchdogSettings
 from riskbound.supervision.stop import ZERO_VELOCITY, stop_command
 
@@ -135,6 +139,7 @@ class WatchdogNode(Node):
                                                                     twist.angular.z))
         if msg.header.frame_id:
             self._body_frame = msg.header.frame_id
+        self._check(forward=True)
 
     def _on_status(self, msg):
         values = {kv.key: kv.value for kv in msg.values}
@@ -193,12 +198,18 @@ class WatchdogNode(Node):
             self._publish_diagnostics()
 
     def _on_check(self):
-        """Between control cycles: send the stop as soon as a stopping fault appears."""
+        self._check(forward=False)
+
+    def _check(self, forward):
+        """Between control cycles: send the stop as soon as a stopping fault appears; with `forward`
+        (a planned command just arrived) send that command at once when the robot may drive."""
         try:
             now = self.get_clock().now()
             if self._monitor.stop_now(now.nanoseconds * 1e-9) is not None:
                 self._publish_command(now, self._stop(now))
                 self._publish_diagnostics()
+            elif forward and self._monitor.state != STOPPED:
+                self._publish_command(now, self._monitor.command)
         except Exception:  # noqa: BLE001 - same fallback as the control cycle
             self._warn("internal", "fault check failed, sending zero velocity:\n" + traceback.format_exc())
             self._publish_command(self.get_clock().now(), ZERO_VELOCITY)
