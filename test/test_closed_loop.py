@@ -19,8 +19,8 @@ The replayed walkers cannot react to the robot, so the parameters use the least_
 infeasible response (see config/drone_closed_loop.yaml): a stop in a walker's path is a collision.
 
 Parameters: config/drone_closed_loop.yaml (its comments give every difference from drone.yaml) and
-the replay at half speed (rate 0.5), so that the seven node processes share the two cores without
-falling behind the bag's clock.
+the replay at a quarter of real time (rate 0.25, riskbound.closed_loop.DEFAULT_RATE), so that the
+seven node processes share the two cores without falling behind the bag's clock.
 """
 
 import os
@@ -30,7 +30,7 @@ import pytest
 from riskbound.closed_loop import run_closed_loop
 from riskbound.logs import bag_io
 
-REPLAY_RATE = 0.5
+REPLAY_RATE = 0.25
 TIME_LIMIT_S = 160.0
 CYCLES_REPORTED_FRACTION = 0.95
 RECORDED_TOPICS = {"/odom", "/cmd_vel", "/cmd_vel_plan", "/planner_status", "/obstacle_forecast", "/detections",
