@@ -31,7 +31,7 @@ install: $(STAMP)
 
 demo: $(STAMP)
 	@echo "ROS_DOMAIN_ID=$(ROS_DOMAIN_ID) ROS_AUTOMATIC_DISCOVERY_RANGE=$(ROS_AUTOMATIC_DISCOVERY_RANGE)"
-	$(BIN)/riskbound demo --out out/demo
+	$(BIN)/riskbound closedloop --out out/demo
 
 test: $(STAMP)
 	@echo "ROS_DOMAIN_ID=$(ROS_DOMAIN_ID) ROS_AUTOMATIC_DISCOVERY_RANGE=$(ROS_AUTOMATIC_DISCOVERY_RANGE)"

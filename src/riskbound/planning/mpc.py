@@ -20,8 +20,9 @@ robot can reach in one step), `infeasible_response` decides:
   solution of the soft one, Numerical Optimization, 2nd ed., 2006, Sec. 17.2, Theorem 17.3, value
   from memory; see VIOLATION_PENALTY). Plans with every slack at zero are reported as before; a
   plan with a positive slack is the motion that leaves the ellipses with the least total
-  violation, reported with status least_violation. The chance constraint does not hold for such a plan; it is for robots among
-  people who may not react to it, where standing still in a walker's path is the worse choice.
+  violation, reported with status least_violation. The chance constraint does not hold for such
+  a plan; the response is for robots among people who may not react to them, where standing still
+  in a walker's path is the worse choice.
 """
 
 import time
