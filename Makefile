@@ -8,7 +8,11 @@ BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
 export ROS_AUTOMATIC_DISCOVERY_RANGE := LOCALHOST
-ROS_DOMAIN_ID ?= $(shell $(PYTHON) -c 'import random; print(random.randint(1, 101))' 2>/dev/null || echo 57)
+# Drawn once per make run (a plain `?=` would draw again at every expansion, so the id echoed
+# would not be the id the processes use).
+ifndef ROS_DOMAIN_ID
+ROS_DOMAIN_ID := $(shell $(PYTHON) -c 'import random; print(random.randint(1, 101))' 2>/dev/null || echo 57)
+endif
 export ROS_DOMAIN_ID
 # One BLAS thread: the solver's small factorisations gain nothing from threads on 2 cores and
 # OpenBLAS's spinning helpers steal the core the other node needs.
