@@ -15,6 +15,7 @@ import time
 import numpy as np
 
 from riskbound.bench.time_histogram import write_time_histogram
+from riskbound.planning.settings import INFEASIBLE_RESPONSES
 
 TARGET_MEDIAN_MS = 5.0
 TARGET_P99_MS = 20.0
@@ -26,6 +27,8 @@ def add_arguments(parser):
     parser.add_argument("--model", default="double_integrator", choices=["double_integrator", "unicycle"])
     parser.add_argument("--horizon-steps", type=int, default=20)
     parser.add_argument("--max-cycles", type=int, default=300, help="cycles per crossing at most")
+    parser.add_argument("--infeasible-response", default="stop", choices=INFEASIBLE_RESPONSES,
+                        help="the planner's infeasible_response (default stop)")
     parser.add_argument("--out", default="out/bench", help="directory for planner.json and planner_solve_ms.png")
 
 
@@ -41,7 +44,8 @@ def run(args):
     from riskbound.planning.mpc import ChanceConstrainedMPC
     from riskbound.planning.settings import PlannerSettings
 
-    settings = PlannerSettings(robot_model=args.model, horizon_steps=args.horizon_steps)
+    settings = PlannerSettings(robot_model=args.model, horizon_steps=args.horizon_steps,
+                               infeasible_response=args.infeasible_response)
     mpc = ChanceConstrainedMPC(settings)
     os.makedirs(args.out, exist_ok=True)
     rows, samples = {}, {}
@@ -61,6 +65,7 @@ def run(args):
             solve_ms.extend(log.solve_ms.tolist())
             outcomes.append({"seed": seed, "reached_goal": log.reached_goal, "cycles": log.cycles,
                              "failures": log.failures, "min_clearance_m": log.min_clearance_m,
+                             "least_violation_cycles": sum(r.status == "least_violation" for r in log.results),
                              "collision_cycles": log.collisions})
         rows[walkers] = dict(summarise(solve_ms), crossings=outcomes)
         samples[walkers] = solve_ms
@@ -68,20 +73,25 @@ def run(args):
 
     base = rows[args.walkers[0]]["median_ms"]
     print(f"planner solve time, {args.model}, {args.horizon_steps} steps, max_obstacles={settings.max_obstacles}, "
-          f"{args.seeds} crossings per size ({platform.processor() or platform.machine()}, {os.cpu_count()} cores)")
+          f"infeasible_response={settings.infeasible_response}, {args.seeds} crossings per size "
+          f"({platform.processor() or platform.machine()}, {os.cpu_count()} cores)")
     print(f"{'walkers':>8} {'cycles':>7} {'median':>8} {'p90':>8} {'p99':>8} {'max':>8} {'median ratio':>13} "
-          f"{'failed':>7} {'reached':>8}")
+          f"{'failed':>7} {'least viol.':>12} {'contact':>8} {'reached':>8}")
     for walkers, row in rows.items():
         failed = sum(c["failures"] for c in row["crossings"])
+        violating = sum(c["least_violation_cycles"] for c in row["crossings"])
+        contact = sum(c["collision_cycles"] for c in row["crossings"])
         reached = sum(c["reached_goal"] for c in row["crossings"])
         print(f"{walkers:>8} {row['cycles']:>7} {row['median_ms']:>8.2f} {row['p90_ms']:>8.2f} {row['p99_ms']:>8.2f} "
-              f"{row['max_ms']:>8.2f} {row['median_ms'] / base:>13.2f} {failed:>7} {reached:>5}/{args.seeds}")
+              f"{row['max_ms']:>8.2f} {row['median_ms'] / base:>13.2f} {failed:>7} {violating:>12} {contact:>8} "
+              f"{reached:>5}/{args.seeds}")
     if 40 in rows:
         ok = rows[40]["median_ms"] <= TARGET_MEDIAN_MS and rows[40]["p99_ms"] <= TARGET_P99_MS
         print(f"target at 40 walkers: median ≤ {TARGET_MEDIAN_MS} ms and p99 ≤ {TARGET_P99_MS} ms: "
               f"{'met' if ok else 'MISSED'}")
 
     report = {"model": args.model, "horizon_steps": args.horizon_steps, "max_obstacles": settings.max_obstacles,
+              "infeasible_response": settings.infeasible_response,
               "seeds": args.seeds, "machine": {"cores": os.cpu_count(), "processor": platform.processor()},
               "results": {str(k): v for k, v in rows.items()}}
     json_path = os.path.join(args.out, "planner.json")
