@@ -30,6 +30,7 @@ def close_pass_bag(tmp_path_factory):
     run = synthetic.straight_crossing((-5.0, 0.0), (1.0, 0.0), (0.0, -6.1571), (0.0, 1.0), 10.0,
                                       others=[(3, (20.0, 20.0), (0.0, 0.0))])
     run.failures = (45, 46)
+    run.least_violations = (47, 48, 49)  # then three plans commanded inside the walker's ellipse
     run.stops = [(104.8, "planner_failure")]
     path = tmp_path_factory.mktemp("cli") / "close_pass"
     synthetic.write_review_bag(path, run)
@@ -61,6 +62,8 @@ def test_full_review_with_replanning(close_pass_bag, tmp_path):
     assert event["obstacle_id"] == 7 and event["collision"] is False
     assert event["min_clearance_m"] == pytest.approx(0.2, abs=0.01)
     assert event["planner"]["failures"] == 2 and event["watchdog"]["stops"] == 1
+    assert event["planner"]["least_violation"] == 3
+    assert "3 least-violation plans" in report and "the risk bound did not hold" in report
     assert event["watchdog"]["stop_causes"] == ["planner_failure"]
     replan = event["replan"]
     assert replan["available"] and replan["goal_source"] == "goal topic"

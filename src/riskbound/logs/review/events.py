@@ -263,6 +263,8 @@ def planner_context(data, event, context_s=CONTEXT_S):
         "solve_ms_median": float(np.median(finite_solve)) if len(finite_solve) else None,
         "solve_ms_max": float(np.max(finite_solve)) if len(finite_solve) else None,
         "failures": len(failures), "failure_statuses": sorted(set(failures)),
+        # Plans commanded although they enter an obstacle ellipse (infeasible_response least_violation).
+        "least_violation": int(sum(status == "least_violation" for status in statuses)),
         "min_margin_m": float(np.min(finite_margins)) if len(finite_margins) else None,
     }
     if onset >= 0:

@@ -42,7 +42,7 @@ stamps; lengths in metres; null where a value is unknown):
             "risk_level": float, "risk_level_source": str, "position_error_m": float,
             "mahalanobis": float, "chi2_bound": float, "inside_risk_ellipse": bool}],
         "planner": {"available": bool, "window_s": [from, to], "cycles": int, "solve_ms_median": float|null,
-            "solve_ms_max": float|null, "failures": int, "failure_statuses": [str],
+            "solve_ms_max": float|null, "failures": int, "failure_statuses": [str], "least_violation": int,
             "min_margin_m": float|null, "risk_level": float|null, "risk_allocation": str|null,
             "status_at_onset": str},
         "watchdog": {"available": bool, "states": [str], "stops": int, "stop_causes": [str],
@@ -425,6 +425,9 @@ def _event_section(data, event):
     if planner.get("available"):
         failures = (f"{planner['failures']} failed ({', '.join(planner['failure_statuses'])})"
                     if planner["failures"] else "no failures")
+        if planner.get("least_violation"):
+            failures += (f", {planner['least_violation']} least-violation plans (commanded inside an obstacle "
+                         f"ellipse: the risk bound did not hold)")
         lines.append(f"- Planner from 2 s before onset to the end: {planner['cycles']} cycles, {failures}; solve "
                      f"median {_f(planner['solve_ms_median'], 1)} ms, max {_f(planner['solve_ms_max'], 1)} ms; "
                      f"risk level α={_f(planner.get('risk_level'), 3)} ({planner.get('risk_allocation') or '?'}); "

@@ -37,6 +37,7 @@ class SyntheticRun:
     goal: tuple = (10.0, 0.0)
     risk_level: float = 0.05
     failures: tuple = ()            # frame indices whose planner status is a failure
+    least_violations: tuple = ()    # frame indices whose plan is a least-violation plan (level WARN)
     stops: list = field(default_factory=list)   # (time_s, cause) of watchdog stops
     forecast_steps: int = 20
     forecast_step_s: float = 0.1
@@ -189,6 +190,7 @@ def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="",
     walker_v = run.walker_velocities()
     yaw_at_frames = np.interp(run.frame_times_s, run.robot_times_s, np.unwrap(yaws))
     failures = set(run.failures)
+    violating = set(run.least_violations) - failures
     stop_times = sorted(run.stops)
 
     def body(k_velocity, yaw):
@@ -224,9 +226,10 @@ def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="",
                 offsets = run.forecast_step_s * np.arange(run.forecast_steps + 1)
                 put("plan", t, path_cdr(t, t + offsets, robot_xy + offsets[:, None] * velocity))
             failed = k in failures
+            status = "infeasible" if failed else "least_violation" if k in violating else "solved"
             values = {"solve_ms": f"{20.0 + 15.0 * np.sin(0.1 * k) ** 2 + (60.0 if failed else 0.0):.6g}",
                       "iterations": str(8 + k % 5), "solver_status": "Infeasible_Problem_Detected" if failed
-                      else "Solve_Succeeded", "status": "infeasible" if failed else "solved", "cost": "1.5",
+                      else "Solve_Succeeded", "status": status, "cost": "1.5",
                       "obstacles_considered": str(int(present.sum())), "obstacles_dropped": "0",
                       "risk_level": f"{run.risk_level:.6g}", "risk_allocation": "joint",
                       "risk_per_constraint": f"{run.risk_level / 160:.6g}",
@@ -236,8 +239,11 @@ def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="",
                 values["robot_radius_m"] = f"{robot_radius_m:.6g}"
             if failed:
                 values["reason"] = "no plan: infeasible (solver: Infeasible_Problem_Detected)"
-            put("planner_status", t, planner_status_cdr(2 if failed else 0, "infeasible" if failed else "solved",
-                                                        values))
+            if status == "least_violation":
+                values.update(max_violation="0.3", min_margin_m="-0.12",
+                              reason="no plan meets every obstacle constraint: commanding the least-violation plan")
+            put("planner_status", t, planner_status_cdr(2 if failed else 1 if status == "least_violation" else 0,
+                                                        status, values))
             stopped = any(s <= t < s + 1.0 for s, _ in stop_times)
             command = body(velocity, yaw_at_frames[k])
             put("cmd_vel_plan", t, twist_cdr(t, command))
