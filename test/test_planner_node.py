@@ -388,6 +388,45 @@ def test_horizon_change_rebuilds_without_stopping_status(graph):
     assert result.successful
 
 
+def test_infeasible_response_decides_between_no_command_and_the_least_violation_plan(graph):
+    # A walker standing on the robot: no plan meets its ellipse. With the default response the cycle
+    # fails (ERROR, no command: the watchdog stops the robot); with least_violation the planner
+    # commands the plan that leaves the ellipse, at level WARN, saying the risk bound does not hold.
+    driver, _ = graph
+    times = np.round(np.arange(0.0, 2.05, 0.1), 10)
+    on_robot = ObstacleForecast([5], times, np.tile([[[0.05, 0.05]]], (1, len(times), 1)), np.zeros((1, len(times))),
+                                np.tile(0.01 * np.eye(2), (1, len(times), 1, 1)), [[0.3, 0.3]])
+    normal = driver.forecast
+    driver.forecast = on_robot
+    try:
+        since = time.monotonic()
+        failed = wait_for(lambda: [s for s in driver.messages("status", since) if values_of(s)["status"] == "infeasible"],
+                          10.0, "an infeasible status with the default response")
+        assert failed[-1].level == DiagnosticStatus.ERROR
+        time.sleep(0.3)
+        quiet = time.monotonic()
+        time.sleep(0.6)
+        assert driver.messages("cmd", quiet) == []
+
+        assert driver.set_parameter("infeasible_response", "least_violation").successful
+        since = time.monotonic()
+        escaping = wait_for(lambda: [s for s in driver.messages("status", since)
+                                     if values_of(s)["status"] == "least_violation"], 20.0, "a least_violation status")
+        values = values_of(escaping[-1])
+        assert escaping[-1].level == DiagnosticStatus.WARN
+        assert float(values["max_violation"]) > 0.0 and float(values["min_margin_m"]) < 0.0
+        assert "risk bound does not hold" in values["reason"]
+        commands = wait_for(lambda: driver.messages("cmd", since), 5.0, "commands while escaping")
+        assert max(math.hypot(c.twist.linear.x, c.twist.linear.y) for c in commands) > 0.05
+    finally:
+        driver.forecast = normal
+        assert driver.set_parameter("infeasible_response", "stop").successful
+    since = time.monotonic()
+    wait_for(lambda: [s for s in driver.messages("status", since)
+                      if values_of(s)["status"] == "solved" and s.level == DiagnosticStatus.OK], 20.0,
+             "solving again with the default response")
+
+
 def test_invalid_start_value_is_refused_naming_the_parameter():
     done = subprocess.run([sys.executable, "-m", "riskbound.ros.planner_node",
                            "--ros-args", "-p", "risk_level:=0.5"], capture_output=True, text=True, timeout=30)

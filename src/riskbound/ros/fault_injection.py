@@ -152,6 +152,7 @@ class Probe:
         rclpy.init(context=self.context)
         self.node = rclpy.create_node("fault_probe", context=self.context)
         self.commands = deque(maxlen=20000)  # (arrival_s, stamp_s, VelocityCommand)
+        self.planned = deque(maxlen=20000)  # (arrival_s, VelocityCommand) of cmd_vel_plan
         self.diagnostics = deque(maxlen=5000)  # (arrival_s, {key: value})
         self.position = None
         self.forecast_mode = "empty"
@@ -159,6 +160,8 @@ class Probe:
         node.create_subscription(TwistStamped, "cmd_vel", self._on_cmd_vel,
                                  QoSProfile(depth=50, reliability=ReliabilityPolicy.RELIABLE))
         node.create_subscription(DiagnosticArray, "/diagnostics", self._on_diagnostics, 50)
+        node.create_subscription(TwistStamped, "cmd_vel_plan", self._on_planned,
+                                 QoSProfile(depth=50, reliability=ReliabilityPolicy.RELIABLE))
         node.create_subscription(Odometry, "odom", self._on_odom, qos_profile_sensor_data)
         self._forecast_pub = node.create_publisher(
             PointCloud2, "obstacle_forecast", QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE))
@@ -189,6 +192,10 @@ class Probe:
         t = msg.twist
         self.commands.append((time.time(), stamp_to_seconds(msg.header.stamp),
                               VelocityCommand(t.linear.x, t.linear.y, t.angular.z)))
+
+    def _on_planned(self, msg):
+        t = msg.twist
+        self.planned.append((time.time(), VelocityCommand(t.linear.x, t.linear.y, t.angular.z)))
 
     def _on_diagnostics(self, msg):
         for status in msg.status:
