@@ -4,6 +4,7 @@ import dataclasses
 import math
 import re
 
+import numpy as np
 import pytest
 
 from riskbound.motion.robot_models import ROBOT_MODELS
@@ -156,3 +157,14 @@ def test_only_structural_settings_need_a_rebuild():
 def test_deadline_is_the_time_fraction_of_the_control_period():
     assert PlannerSettings().deadline_s == pytest.approx(0.8 / 10.0)
     assert PlannerSettings(solver_time_fraction=1.0, control_rate_hz=1.0).deadline_s == pytest.approx(1.0)
+
+
+def test_numpy_scalars_are_taken_as_the_numbers_they_hold():
+    settings = PlannerSettings(horizon_steps=np.int64(12), risk_level=np.float32(0.1), max_obstacles=np.int32(4))
+    assert (settings.horizon_steps, settings.max_obstacles) == (12, 4)
+    assert type(settings.horizon_steps) is int and type(settings.risk_level) is float
+    assert settings.risk_level == pytest.approx(0.1)
+    with pytest.raises(ValueError, match="horizon_steps=61 is out of range"):
+        PlannerSettings(horizon_steps=np.int64(61))
+    with pytest.raises(ValueError, match="wrong type"):
+        PlannerSettings(horizon_steps=np.float64(12.0))

@@ -9,6 +9,8 @@ control path). All other settings enter the problem as numbers at the next solve
 
 from dataclasses import dataclass, fields, replace
 
+import numpy as np
+
 from riskbound.motion.robot_models import ROBOT_MODELS
 from riskbound.risk.allocation import ALLOCATION_MODES
 
@@ -60,12 +62,16 @@ class SettingSpec:
 def validate_fields(settings, specs_by_name):
     """Check every field of a frozen settings dataclass against its spec, in field order.
 
-    An integer given for a float setting becomes a float (as ROS parameter files often carry them);
+    An integer given for a float setting becomes a float (as ROS parameter files often carry them),
+    and a numpy scalar the Python number it holds (as scripts computing settings often pass them);
     anything else out of type or range raises ValueError with the spec's reason.
     """
     for item in fields(settings):
         spec = specs_by_name[item.name]
         value = getattr(settings, item.name)
+        if isinstance(value, (np.integer, np.floating, np.bool_)):
+            value = value.item()
+            object.__setattr__(settings, item.name, value)
         if isinstance(spec.default, float) and isinstance(value, int) and not isinstance(value, bool):
             object.__setattr__(settings, item.name, float(value))
         reason = spec.check(getattr(settings, item.name))
