@@ -204,6 +204,30 @@ def test_least_violation_plan_goes_to_the_robot_degraded_and_its_solve_time_coun
     assert verdict.state == STOPPED and not verdict.forward
 
 
+@pytest.mark.parametrize("resume_when_degraded", [False, True])
+def test_warned_plans_after_a_stop_resume_the_robot_only_when_configured(resume_when_degraded):
+    # A planner commanding least-violation plans (WARN) after a stop: by default a warning is a fault
+    # and the stop holds; with resume_when_degraded, recovery_cycles cycles without a stopping fault
+    # resume the robot as degraded, and fault-free cycles then make it healthy.
+    k = 3
+    clocked = Clocked(recovery_cycles=k, resume_when_degraded=resume_when_degraded)
+    clocked.run_healthy()
+    assert clocked.cycle(status=PlannerStatus(level=LEVEL_ERROR, status="infeasible", solve_ms=20.0)).state == STOPPED
+    escaping = PlannerStatus(level=LEVEL_WARN, status="least_violation", solve_ms=20.0, reason="no plan meets ...")
+    states = [clocked.cycle(status=escaping).state for _ in range(2 * k)]
+    if not resume_when_degraded:
+        assert states == [STOPPED] * (2 * k)
+        return
+    assert states[:k - 1] == [STOPPED] * (k - 1) and set(states[k - 1:]) == {DEGRADED}
+    resumed = clocked.monitor.transitions[-1]
+    assert (resumed.previous, resumed.current, resumed.cause) == (STOPPED, DEGRADED, "resumed_degraded")
+    # A stopping fault in the middle restarts the count.
+    assert clocked.cycle(status=PlannerStatus(level=LEVEL_ERROR, status="infeasible", solve_ms=20.0)).state == STOPPED
+    assert [clocked.cycle(status=escaping).state for _ in range(k)] == [STOPPED] * (k - 1) + [DEGRADED]
+    verdicts = [clocked.cycle() for _ in range(k)]
+    assert verdicts[-1].state == HEALTHY and all(v.forward for v in verdicts)
+
+
 def test_stop_is_latched_and_any_fault_restarts_the_recovery_count():
     k = 5
     clocked = Clocked(recovery_cycles=k)

@@ -13,6 +13,7 @@ BENCHMARKS = {
     "compare": "riskbound.bench.compare",
     "faults": "riskbound.bench.faults",
     "tracker": "riskbound.bench.tracker",
+    "crowdloop": "riskbound.bench.crowd_loop",
 }
 
 

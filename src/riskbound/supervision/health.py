@@ -25,6 +25,9 @@ and finds the faults present now:
     healthy  ──degrading fault──► degraded   (the command still goes to the robot)
     healthy/degraded ──stopping fault──► stopped   (a stop goes to the robot; latched)
     degraded/stopped ──recovery_cycles consecutive fault-free cycles──► healthy
+    stopped ──recovery_cycles consecutive cycles without a stopping fault──► degraded
+             (only with resume_when_degraded: a planner that keeps warning, e.g. commanding
+             least-violation plans, may then drive the robot out of a walker's way after a stop)
 
 Status and command faults are also caught on arrival and held until the next cycle, so a NaN
 command or a failure status that a good message replaces before the cycle still stops the robot.
@@ -134,6 +137,7 @@ class HealthMonitor:
         self.statistics = SolveTimeStatistics(settings.statistics_window, settings.deadline_ms)
         self.state = STOPPED
         self.fault_free_cycles = 0
+        self.stop_free_cycles = 0  # consecutive cycles without a stopping fault (resume_when_degraded)
         self.stops_total = 0
         self.transitions = deque(maxlen=TRANSITIONS_KEPT)
         self.last_stop = None
@@ -260,13 +264,20 @@ class HealthMonitor:
             self.fault_free_cycles = 0
         else:
             self.fault_free_cycles += 1
+        self.stop_free_cycles = 0 if stopping else self.stop_free_cycles + 1
+        recovery = self.settings.recovery_cycles
         if stopping and self.state != STOPPED:
             transition = self._record(now_s, self.state, STOPPED, *_joined(stopping))
         elif faults and self.state == HEALTHY:
             transition = self._record(now_s, HEALTHY, DEGRADED, *_joined(faults))
-        elif not faults and self.state != HEALTHY and self.fault_free_cycles >= self.settings.recovery_cycles:
+        elif not faults and self.state != HEALTHY and self.fault_free_cycles >= recovery:
             transition = self._record(now_s, self.state, HEALTHY, "recovered",
                                       f"{self.fault_free_cycles} consecutive fault-free cycles")
+        elif (self.settings.resume_when_degraded and self.state == STOPPED and not stopping
+              and self.stop_free_cycles >= recovery):
+            transition = self._record(now_s, STOPPED, DEGRADED, "resumed_degraded",
+                                      f"{self.stop_free_cycles} consecutive cycles without a stopping fault; "
+                                      f"present: {_joined(faults)[1]}")
         return Verdict(self.state, self.state != STOPPED, faults, transition)
 
     def stop_now(self, now_s):
@@ -281,7 +292,7 @@ class HealthMonitor:
         stopping = [f for f in self.faults(now_s) if f.stops]
         if not stopping:
             return None
-        self.fault_free_cycles = 0
+        self.fault_free_cycles = self.stop_free_cycles = 0
         return self._record(now_s, self.state, STOPPED, *_joined(stopping))
 
     def _record(self, now_s, previous, current, cause, detail):

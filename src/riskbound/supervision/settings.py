@@ -37,6 +37,10 @@ WATCHDOG_SPECS = (
                 "without obstacle tracking)"),
     SettingSpec("recovery_cycles", 5, "consecutive fault-free control cycles needed to leave "
                 "stopped or degraded (hysteresis)", 1, 1000),
+    SettingSpec("resume_when_degraded", False, "false: only fault-free cycles count towards leaving "
+                "stopped; true: recovery_cycles cycles in a row without a stopping fault resume the "
+                "robot as degraded, so warned plans (a planner with infeasible_response "
+                "least_violation) can drive it away after a stop"),
     SettingSpec("max_speed_mps", _PLANNER.max_speed_mps, "a planned command faster than this stops "
                 "the robot [m/s]", 0.0, 20.0, low_open=True),
     SettingSpec("max_turn_rate_radps", _PLANNER.max_turn_rate_radps, "a planned turn rate above this "
@@ -70,6 +74,7 @@ class WatchdogSettings:
     forecast_timeout_s: float = SPECS_BY_NAME["forecast_timeout_s"].default
     require_forecast: bool = SPECS_BY_NAME["require_forecast"].default
     recovery_cycles: int = SPECS_BY_NAME["recovery_cycles"].default
+    resume_when_degraded: bool = SPECS_BY_NAME["resume_when_degraded"].default
     max_speed_mps: float = SPECS_BY_NAME["max_speed_mps"].default
     max_turn_rate_radps: float = SPECS_BY_NAME["max_turn_rate_radps"].default
     stop_mode: str = SPECS_BY_NAME["stop_mode"].default
