@@ -40,7 +40,8 @@ import rclpy  # noqa: E402 - after the discovery range is fixed for this process
 from diagnostic_msgs.msg import DiagnosticArray  # noqa: E402
 from geometry_msgs.msg import PoseStamped, TwistStamped  # noqa: E402
 from nav_msgs.msg import Odometry  # noqa: E402
-from rclpy.executors import SingleThreadedExecutor  # noqa: E402
+from rclpy.callback_groups import MutuallyExclusiveCallbackGroup  # noqa: E402
+from rclpy.executors import MultiThreadedExecutor  # noqa: E402
 from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy, qos_profile_sensor_data  # noqa: E402
 from sensor_msgs.msg import PointCloud2  # noqa: E402
 from std_msgs.msg import Header  # noqa: E402
@@ -157,12 +158,15 @@ class Probe:
         self.position = None
         self.forecast_mode = "empty"
         node = self.node
-        node.create_subscription(TwistStamped, "cmd_vel", self._on_cmd_vel,
-                                 QoSProfile(depth=50, reliability=ReliabilityPolicy.RELIABLE))
-        node.create_subscription(DiagnosticArray, "/diagnostics", self._on_diagnostics, 50)
-        node.create_subscription(TwistStamped, "cmd_vel_plan", self._on_planned,
-                                 QoSProfile(depth=50, reliability=ReliabilityPolicy.RELIABLE))
-        node.create_subscription(Odometry, "odom", self._on_odom, qos_profile_sensor_data)
+        # Listening and publishing in separate callback groups on two threads: publishing a forecast
+        # to a planner that is SIGSTOPped may wait for its acknowledgement (a reliable writer), and
+        # that must not keep the probe from seeing the stop it is there to time.
+        listen = MutuallyExclusiveCallbackGroup()
+        reliable = QoSProfile(depth=50, reliability=ReliabilityPolicy.RELIABLE)
+        node.create_subscription(TwistStamped, "cmd_vel", self._on_cmd_vel, reliable, callback_group=listen)
+        node.create_subscription(DiagnosticArray, "/diagnostics", self._on_diagnostics, 50, callback_group=listen)
+        node.create_subscription(TwistStamped, "cmd_vel_plan", self._on_planned, reliable, callback_group=listen)
+        node.create_subscription(Odometry, "odom", self._on_odom, qos_profile_sensor_data, callback_group=listen)
         self._forecast_pub = node.create_publisher(
             PointCloud2, "obstacle_forecast", QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE))
         self._goal_pub = node.create_publisher(
@@ -171,8 +175,8 @@ class Probe:
         self._plan_cmd_pub = node.create_publisher(
             TwistStamped, "cmd_vel_plan", QoSProfile(depth=10, reliability=ReliabilityPolicy.RELIABLE))
         self._lock = threading.Lock()
-        node.create_timer(1.0 / FORECAST_RATE_HZ, self.publish_forecast)
-        self._executor = SingleThreadedExecutor(context=self.context)
+        node.create_timer(1.0 / FORECAST_RATE_HZ, self.publish_forecast, callback_group=MutuallyExclusiveCallbackGroup())
+        self._executor = MultiThreadedExecutor(num_threads=2, context=self.context)
         self._executor.add_node(node)
         self._running = True
         self._thread = threading.Thread(target=self._spin, name="fault_probe", daemon=True)
@@ -185,6 +189,7 @@ class Probe:
     def close(self):
         self._running = False
         self._thread.join(timeout=5.0)
+        self._executor.shutdown(timeout_sec=5.0)
         self.node.destroy_node()
         rclpy.try_shutdown(context=self.context)
 

@@ -9,7 +9,8 @@ plus one check period, well inside the required limit plus one control period. A
 is also forwarded the moment it arrives when the robot is not stopped and no stopping fault is
 present: waiting for the next control cycle would add up to one control period of latency between
 the plan and the robot (measured in the closed loop on the replayed crowd: a walker 0.1 s closer
-than planned for). It publishes
+than planned for). The control cycle then does not send it again, so cmd_vel still carries one
+message per control period. It publishes
 /diagnostics (one DiagnosticStatus, level OK/WARN/ERROR for healthy/degraded/stopped) at
 diagnostics_rate_hz and at every transition.
 
@@ -84,6 +85,7 @@ class WatchdogNode(Node):
         self._monitor = HealthMonitor(self._settings, start_s=self._now_s())
         self._published = None  # the last command sent to the robot (a ramp continues from it)
         self._published_s = None
+        self._forwarded = None  # a planned command sent on arrival since the last control cycle
         self._body_frame = ""  # the planner's command frame, else odometry's child frame
         self._last_stamps = {}
         self._warn = ThrottledWarnings(self.get_logger()).warn
@@ -193,7 +195,16 @@ class WatchdogNode(Node):
     def _control_cycle(self):
         now = self.get_clock().now()
         verdict = self._monitor.step(now.nanoseconds * 1e-9)
-        self._publish_command(now, self._monitor.command if verdict.forward else self._stop(now))
+        command = self._monitor.command if verdict.forward else self._stop(now)
+        # A command already forwarded on arrival since the last cycle is not sent again, so cmd_vel
+        # keeps one message per control period. Extra messages cost more than bandwidth: a reliable
+        # writer may wait for a reader that stopped acknowledging (a hung base driver). With twice
+        # the messages, the fault-injection test saw this node stall for a second once while the
+        # simulated robot was SIGSTOPped.
+        already_sent = verdict.forward and command is self._forwarded
+        self._forwarded = None
+        if not already_sent:
+            self._publish_command(now, command)
         if verdict.transition is not None:
             self._publish_diagnostics()
 
@@ -210,6 +221,7 @@ class WatchdogNode(Node):
                 self._publish_diagnostics()
             elif forward and self._monitor.state != STOPPED:
                 self._publish_command(now, self._monitor.command)
+                self._forwarded = self._monitor.command
         except Exception:  # noqa: BLE001 - same fallback as the control cycle
             self._warn("internal", "fault check failed, sending zero velocity:\n" + traceback.format_exc())
             self._publish_command(self.get_clock().now(), ZERO_VELOCITY)
