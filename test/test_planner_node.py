@@ -34,6 +34,8 @@ from riskbound.ros.plan_messages import plan_kinematics
 from riskbound.ros.conversions import seconds_to_stamp, stamp_to_seconds, yaw_to_quaternion
 from riskbound.ros.forecast_codec import forecast_to_cloud
 
+from node_helpers import stop_process_group, wait_for
+
 HORIZON_STEPS = 20
 STEP_S = 0.1
 # 5 Hz with the whole period for the solver: the test machine is shared, and a cycle that hits
@@ -47,16 +49,6 @@ REQUIRED_KEYS = ("solve_ms", "iterations", "solver_status", "status", "cost", "o
 
 def values_of(status):
     return {kv.key: kv.value for kv in status.values}
-
-
-def wait_for(predicate, timeout_s, what):
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        result = predicate()
-        if result:
-            return result
-        time.sleep(0.05)
-    raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
 
 
 def run_cli(*args, timeout_s=30):
@@ -160,16 +152,6 @@ class Driver:
         self.node.destroy_node()
 
 
-def stop_process(process):
-    if process.poll() is None:
-        os.killpg(process.pid, signal.SIGTERM)
-        try:
-            process.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            os.killpg(process.pid, signal.SIGKILL)
-            process.wait(timeout=10)
-
-
 @pytest.fixture(scope="module")
 def graph(tmp_path_factory):
     log_path = tmp_path_factory.mktemp("planner") / "planner.log"
@@ -189,7 +171,7 @@ def graph(tmp_path_factory):
                  "a first OK planner_status")
         yield driver, process
     finally:
-        stop_process(process)
+        stop_process_group(process)
         if driver is not None:
             driver.close()
         rclpy.try_shutdown()

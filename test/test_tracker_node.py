@@ -28,21 +28,13 @@ from visualization_msgs.msg import Marker, MarkerArray
 from riskbound.ros.conversions import seconds_to_stamp, stamp_to_seconds, yaw_to_quaternion
 from riskbound.ros.forecast_codec import FIELD_NAMES, cloud_to_forecast
 
+from node_helpers import stop_process_group, wait_for
+
 FORECAST_STEPS = 10
 START_S = 1000.0
 # Two walkers at 1.2 m/s: one along +x, one along +y, 3 m apart.
 STARTS = np.array([[0.0, 0.0], [3.0, -2.0]])
 VELOCITIES = np.array([[1.2, 0.0], [0.0, 1.2]])
-
-
-def wait_for(predicate, timeout_s, what):
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        result = predicate()
-        if result:
-            return result
-        time.sleep(0.05)
-    raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
 
 
 class Driver:
@@ -102,13 +94,7 @@ def tracker_process():
     try:
         yield process, log.name
     finally:
-        if process.poll() is None:
-            os.killpg(process.pid, signal.SIGINT)
-            try:
-                process.wait(timeout=10)
-            except subprocess.TimeoutExpired:
-                os.killpg(process.pid, signal.SIGKILL)
-                process.wait(timeout=10)
+        stop_process_group(process, signal.SIGINT)
         log.close()
         os.unlink(log.name)
 

@@ -76,10 +76,11 @@ def _package_root():
     return package_share("riskbound")
 
 
-def _params_section(params_file, node):
+def read_parameter_file(params_file):
+    """{node name: its ros__parameters} of a ROS 2 parameter file; ValueError when unreadable."""
     try:
         document = yaml.safe_load(Path(params_file).read_text(encoding="utf-8")) or {}
-        return dict(document.get(node, {}).get("ros__parameters", {}))
+        return {node: dict((section or {}).get("ros__parameters", {}) or {}) for node, section in document.items()}
     except (OSError, yaml.YAMLError, AttributeError) as error:
         raise ValueError(f"params_file={str(params_file)!r}: unreadable ({error})") from None
 
@@ -155,7 +156,7 @@ def run_closed_loop(out_dir, bag=None, params_file=None, rate=DEFAULT_RATE, time
     params_file = Path(params_file).resolve() if params_file is not None else _package_root() / DEFAULT_PARAMS
     if not rate > 0.0:
         raise ValueError(f"rate={rate!r} must be > 0")
-    planner = _params_section(params_file, "planner")
+    planner = read_parameter_file(params_file).get("planner", {})
     robot_radius_m = float(planner.get("robot_radius_m", 0.3))
     control_rate_hz = float(planner.get("control_rate_hz", 10.0))
     metadata = read_custom_data(bag)

@@ -68,19 +68,12 @@ def _overrides(items, option):
     return values
 
 
-def _section(document, node):
-    section = (document or {}).get(node, {}) or {}
-    return dict(section.get("ros__parameters", {}) or {})
-
-
 def load_settings(params_file, planner_overrides, tracker_overrides):
     """(PlannerSettings, TrackerSettings, simulated-robot max acceleration) from a parameter file."""
+    from riskbound.closed_loop import read_parameter_file
     from riskbound.tracking.settings import TrackerSettings
 
-    try:
-        document = yaml.safe_load(Path(params_file).read_text(encoding="utf-8"))
-    except (OSError, yaml.YAMLError) as error:
-        raise ValueError(f"--params-file {params_file}: unreadable ({error})") from None
+    sections = read_parameter_file(params_file)
     planner_names = {f.name for f in fields(PlannerSettings)}
     tracker_names = {f.name for f in fields(TrackerSettings)}
     for name in planner_overrides:
@@ -89,18 +82,19 @@ def load_settings(params_file, planner_overrides, tracker_overrides):
     for name in tracker_overrides:
         if name not in tracker_names:
             raise ValueError(f"--tracker-set {name}: not a tracker setting")
-    planner = {k: v for k, v in _section(document, "planner").items() if k in planner_names}
+    planner = {k: v for k, v in sections.get("planner", {}).items() if k in planner_names}
     planner = PlannerSettings(**dict(planner, **planner_overrides))
-    tracker = {k: v for k, v in _section(document, "tracker").items() if k in tracker_names}
+    tracker = {k: v for k, v in sections.get("tracker", {}).items() if k in tracker_names}
     tracker.update(tracker_overrides)
     tracker.update(forecast_steps=planner.horizon_steps, forecast_step_s=planner.step_s)  # the planner's grid
     tracker = TrackerSettings(**tracker)
-    max_accel = float(_section(document, "sim_robot").get("max_accel_mps2", planner.max_accel_mps2))
+    max_accel = float(sections.get("sim_robot", {}).get("max_accel_mps2", planner.max_accel_mps2))
     return planner, tracker, max_accel
 
 
 def crowd_frames(scenario_path, seed, duration_s):
     """(scenario, frames, detections): the crowd and detector output of `riskbound crowd --seed`."""
+    from riskbound.crowd.record import seeded_generators
     from riskbound.crowd.scenario import load_scenario
     from riskbound.crowd.sensor import DetectorModel
     from riskbound.crowd.simulate import simulate
@@ -108,9 +102,8 @@ def crowd_frames(scenario_path, seed, duration_s):
     scenario = load_scenario(scenario_path)
     if scenario.robot_start is None or scenario.robot_goal is None:
         raise ValueError(f"{scenario_path}: needs robot_start and robot_goal for a crossing")
-    crowd_seed, detector_seed = np.random.SeedSequence(seed).spawn(2)
-    run = simulate(scenario, np.random.default_rng(crowd_seed), duration_s=duration_s, rate_hz=FRAME_RATE_HZ)
-    rng = np.random.default_rng(detector_seed)
+    crowd_rng, rng = seeded_generators(seed)
+    run = simulate(scenario, crowd_rng, duration_s=duration_s, rate_hz=FRAME_RATE_HZ)
     detector, bounds = DetectorModel(), scenario.bounds()
     detections = [detector.detect(frame.positions, frame.headings, bounds, rng)[0:2] for frame in run.frames]
     return scenario, run.frames, detections
@@ -129,6 +122,8 @@ def crossing(planner, tracker_settings, max_accel, scenario, frames, detections,
     mpc.reset()
     grid = planner.step_s * np.arange(1, planner.horizon_steps + 1)
     period = 1.0 / FRAME_RATE_HZ
+    # Odometry covariance: 0.02 m position and 0.02 m/s velocity std, the sim_robot node's pose_std_m
+    # and twist_std_mps in config/drone_closed_loop.yaml.
     P0 = np.diag([0.02**2, 0.02**2, 0.02**2, 0.02**2])
     first = int(round((start_s - TRACKING_LEAD_S) * FRAME_RATE_HZ))
     leave = int(round(start_s * FRAME_RATE_HZ))
@@ -192,10 +187,10 @@ def _plot(series, path):
 
 
 def run(args):
-    from riskbound.closed_loop import _package_root
+    from riskbound.launching.xml_description import package_share
     from riskbound.planning.mpc import ChanceConstrainedMPC
 
-    root = _package_root()
+    root = package_share("riskbound")
     try:
         planner, tracker, max_accel = load_settings(args.params_file or root / DEFAULT_PARAMS,
                                                     _overrides(args.set, "--set"),

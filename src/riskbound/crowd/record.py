@@ -41,6 +41,13 @@ class RecordingSummary:
     size_bytes: int
 
 
+def seeded_generators(seed):
+    """(crowd generator, detector generator) for a bag's seed: the crowd is simulated with the first
+    and the detector's noise, misses and clutter are drawn from the second, frame by frame."""
+    crowd_seed, detector_seed = np.random.SeedSequence(seed).spawn(2)
+    return np.random.default_rng(crowd_seed), np.random.default_rng(detector_seed)
+
+
 def generate_crowd_bag(scenario_path, bag_path, seed=0, duration_s=None, rate_hz=10.0, clock_hz=100.0,
                        detector=None, frame_id="odom", storage="mcap", progress=None):
     """Simulate the scenario and write the bag. Returns a RecordingSummary.
@@ -56,14 +63,13 @@ def generate_crowd_bag(scenario_path, bag_path, seed=0, duration_s=None, rate_hz
         raise ValueError(f"storage={storage!r}: allowed values are {', '.join(bag_io.STORAGE_FORMATS)}")
     detector = DetectorModel() if detector is None else detector
     scenario = load_scenario(scenario_path)
-    crowd_seed, detector_seed = np.random.SeedSequence(seed).spawn(2)
+    crowd_rng, rng = seeded_generators(seed)
 
     started = time.perf_counter()
-    run = simulate(scenario, np.random.default_rng(crowd_seed), duration_s=duration_s, rate_hz=rate_hz,
+    run = simulate(scenario, crowd_rng, duration_s=duration_s, rate_hz=rate_hz,
                    progress=None if progress is None else (lambda f: progress("simulating", f)))
     simulated = time.perf_counter()
 
-    rng = np.random.default_rng(detector_seed)
     bounds = scenario.bounds()
     frame_ns = [bag_io.seconds_to_ns(frame.time_s) for frame in run.frames]
     clock_step_ns = bag_io.seconds_to_ns(1.0 / clock_hz)

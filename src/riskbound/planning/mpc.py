@@ -101,7 +101,8 @@ class ChanceConstrainedMPC:
         if self.soft:
             w = ca.vertcat(w, slack)
             cost += VIOLATION_PENALTY * ca.sum1(slack)
-        self._plan_size = w.shape[0] - slack.shape[0]
+        self._slack_count = slack.shape[0]
+        self._plan_size = w.shape[0] - self._slack_count
         p = ca.vertcat(reference, weights, ca.vec(obstacle))
         g = ca.vertcat(*g)
         common = {
@@ -138,8 +139,8 @@ class ChanceConstrainedMPC:
         row_lower = np.concatenate([motion_lower, np.ones(s.max_obstacles)])
         row_upper = np.concatenate([motion_upper, np.full(s.max_obstacles, np.inf)])
         if self.soft:
-            slack_count = s.horizon_steps * s.max_obstacles
-            lbx, ubx = np.concatenate([lbx, np.zeros(slack_count)]), np.concatenate([ubx, np.full(slack_count, np.inf)])
+            lbx = np.concatenate([lbx, np.zeros(self._slack_count)])
+            ubx = np.concatenate([ubx, np.full(self._slack_count, np.inf)])
         return lbx, ubx, np.tile(row_lower, s.horizon_steps), np.tile(row_upper, s.horizon_steps)
 
     def _reference(self, position, goal):

@@ -61,3 +61,16 @@ def checked_changes(specs_by_name, parameters, node_name):
             return {}, reason
         changes[spec.name] = value
     return changes, None
+
+
+def changed_settings(settings, specs_by_name, parameters, node_name):
+    """(new settings, changes, reason) for a parameter change request on a settings dataclass:
+    reason is None and new settings are `settings.with_changes(**changes)` when every value is
+    allowed, else new settings are None and reason says what was refused."""
+    changes, reason = checked_changes(specs_by_name, parameters, node_name)
+    if reason:
+        return None, changes, reason
+    try:
+        return settings.with_changes(**changes), changes, None
+    except ValueError as error:
+        return None, changes, str(error)

@@ -20,7 +20,7 @@ from riskbound.motion.robot_models import VelocityCommand
 from riskbound.motion.simulated_robot import (SIM_ROBOT_SPECS, SPECS_BY_NAME, CommandBuffer, SimRobotSettings,
                                               SimulatedRobot)
 from riskbound.ros.conversions import yaw_to_quaternion
-from riskbound.ros.setting_parameters import checked_changes, declare_settings
+from riskbound.ros.setting_parameters import changed_settings, declare_settings
 from riskbound.ros.node_main import spin_node
 from riskbound.ros.throttled_warnings import ThrottledWarnings
 
@@ -52,13 +52,9 @@ class SimRobotNode(Node):
         return self.get_clock().now().nanoseconds * 1e-9
 
     def _on_set_parameters(self, parameters):
-        changes, reason = checked_changes(SPECS_BY_NAME, parameters, NODE_NAME)
+        settings, _, reason = changed_settings(self._settings, SPECS_BY_NAME, parameters, NODE_NAME)
         if reason:
             return SetParametersResult(successful=False, reason=reason)
-        try:
-            settings = self._settings.with_changes(**changes)
-        except ValueError as error:
-            return SetParametersResult(successful=False, reason=str(error))
         self._settings = self._robot.settings = settings
         self._commands.latency_s = settings.command_latency_s
         self._commands.timeout_s = settings.command_timeout_s

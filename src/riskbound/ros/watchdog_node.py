@@ -36,7 +36,7 @@ from sensor_msgs.msg import PointCloud2
 
 from riskbound.motion.robot_models import VelocityCommand
 from riskbound.ros.conversions import stamp_to_seconds
-from riskbound.ros.setting_parameters import checked_changes, declare_settings
+from riskbound.ros.setting_parameters import changed_settings, declare_settings
 from riskbound.ros.node_main import spin_node
 from riskbound.ros.throttled_warnings import ThrottledWarnings
 from riskbound.supervision.health import DEGRADED, HEALTHY, STOPPED, HealthMonitor, planner_status_from_values
@@ -120,13 +120,9 @@ class WatchdogNode(Node):
 
     def _on_set_parameters(self, parameters):
         """The one place parameter changes are validated and applied."""
-        changes, reason = checked_changes(SPECS_BY_NAME, parameters, NODE_NAME)
+        settings, changes, reason = changed_settings(self._settings, SPECS_BY_NAME, parameters, NODE_NAME)
         if reason:
             return SetParametersResult(successful=False, reason=reason)
-        try:
-            settings = self._settings.with_changes(**changes)
-        except ValueError as error:
-            return SetParametersResult(successful=False, reason=str(error))
         self._settings = settings
         self._monitor.update_settings(settings)
         if changes:
