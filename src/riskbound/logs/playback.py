@@ -19,7 +19,7 @@ would fight its own after a rate change or a loop.
 from dataclasses import dataclass, field, fields, replace
 
 from riskbound.logs.bag_io import TOPIC_CLOCK, BagError, open_bag
-from riskbound.planning.settings import SettingSpec
+from riskbound.settings_table import SettingSpec
 
 REPLAY_SPECS = (
     SettingSpec("bag", "", "rosbag2 bag to play: a bag directory or its .mcap/.db3 file", read_only=True),

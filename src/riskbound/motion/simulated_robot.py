@@ -23,7 +23,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from riskbound.motion.robot_models import ROBOT_MODELS, VelocityCommand, make_robot_model
-from riskbound.planning.settings import SettingSpec, validate_fields
+from riskbound.settings_table import SettingSpec, validate_fields
 
 SIM_ROBOT_SPECS = (
     SettingSpec("robot_model", "double_integrator", "motion model of the simulated robot",

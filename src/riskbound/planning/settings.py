@@ -7,76 +7,14 @@ so a value rejected on the robot is rejected for the same reason in a script.
 control path). All other settings enter the problem as numbers at the next solve.
 """
 
-from dataclasses import dataclass, fields, replace
-
-import numpy as np
+from dataclasses import dataclass, replace
 
 from riskbound.motion.robot_models import ROBOT_MODELS
 from riskbound.risk.allocation import ALLOCATION_MODES
+from riskbound.settings_table import SettingSpec, validate_fields
 
 # What the planner does when no plan meets every obstacle constraint (see riskbound.planning.mpc).
 INFEASIBLE_RESPONSES = ("stop", "least_violation")
-
-
-@dataclass(frozen=True)
-class SettingSpec:
-    name: str
-    default: object
-    description: str
-    low: float = None
-    high: float = None
-    low_open: bool = False
-    high_open: bool = False
-    choices: tuple = None
-    rebuild: bool = False
-    read_only: bool = False
-
-    def allowed(self):
-        """Human-readable allowed range, used in every rejection message."""
-        if self.choices is not None:
-            return "one of " + ", ".join(repr(c) for c in self.choices)
-        left = "(" if self.low_open else "["
-        right = ")" if self.high_open else "]"
-        return f"{left}{self.low}, {self.high}{right}"
-
-    def check(self, value):
-        """Return None when `value` is allowed, else the reason it is not."""
-        if self.choices is not None:
-            if value not in self.choices:
-                return f"{self.name}={value!r} is not allowed: must be {self.allowed()}"
-            return None
-        expected = type(self.default)
-        if expected is float and isinstance(value, int) and not isinstance(value, bool):
-            value = float(value)
-        if not isinstance(value, expected) or isinstance(value, bool) != isinstance(self.default, bool):
-            return f"{self.name}={value!r} has the wrong type: expected {expected.__name__}"
-        if isinstance(value, float) and value != value:
-            return f"{self.name}=nan is not allowed: must be in {self.allowed()}"
-        too_low = self.low is not None and (value < self.low or (self.low_open and value == self.low))
-        too_high = self.high is not None and (value > self.high or (self.high_open and value == self.high))
-        if too_low or too_high:
-            return f"{self.name}={value!r} is out of range: must be in {self.allowed()}"
-        return None
-
-
-def validate_fields(settings, specs_by_name):
-    """Check every field of a frozen settings dataclass against its spec, in field order.
-
-    An integer given for a float setting becomes a float (as ROS parameter files often carry them),
-    and a numpy scalar the Python number it holds (as scripts computing settings often pass them);
-    anything else out of type or range raises ValueError with the spec's reason.
-    """
-    for item in fields(settings):
-        spec = specs_by_name[item.name]
-        value = getattr(settings, item.name)
-        if isinstance(value, (np.integer, np.floating, np.bool_)):
-            value = value.item()
-            object.__setattr__(settings, item.name, value)
-        if isinstance(spec.default, float) and isinstance(value, int) and not isinstance(value, bool):
-            object.__setattr__(settings, item.name, float(value))
-        reason = spec.check(getattr(settings, item.name))
-        if reason:
-            raise ValueError(reason)
 
 
 PLANNER_SPECS = (

@@ -21,9 +21,9 @@ from rclpy.executors import ExternalShutdownException
 from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy, qos_profile_sensor_data
 
-from riskbound.planning.settings import SettingSpec
 from riskbound.ros.conversions import yaw_to_quaternion
 from riskbound.ros.setting_parameters import declare_settings
+from riskbound.settings_table import SettingSpec
 
 NODE_NAME = "goal_publisher"
 GOAL_SPECS = (

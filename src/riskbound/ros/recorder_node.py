@@ -27,11 +27,11 @@ from rclpy.node import Node
 
 from riskbound.logs.bag_io import STORAGE_FORMATS, BagError
 from riskbound.logs.recording import RawBagRecorder, default_bag_name
-from riskbound.planning.settings import SettingSpec
 from riskbound.ros.message_types import message_class, qos_to_bag, subscription_qos
 from riskbound.ros.setting_parameters import declare_settings
 from riskbound.ros.string_list_parameter import declare_string_list
 from riskbound.ros.throttled_warnings import ThrottledWarnings
+from riskbound.settings_table import SettingSpec
 
 NODE_NAME = "recorder"
 WARN_THROTTLE_S = 5.0

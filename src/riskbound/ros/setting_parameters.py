@@ -1,4 +1,4 @@
-"""ROS parameters from a settings table (a tuple of riskbound.planning.settings.SettingSpec).
+"""ROS parameters from a settings table (a tuple of riskbound.settings_table.SettingSpec).
 
 One helper for the nodes whose settings live in a core table: descriptors with description,
 range and read-only flag; declaration with validation of the start values; and the check of a

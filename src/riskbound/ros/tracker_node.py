@@ -30,12 +30,12 @@ from sensor_msgs.msg import PointCloud2
 from std_msgs.msg import ColorRGBA, Header
 from visualization_msgs.msg import Marker, MarkerArray
 
-from riskbound.planning.settings import SettingSpec
 from riskbound.ros.conversions import quaternion_to_yaw, seconds_to_stamp, stamp_to_seconds, yaw_to_quaternion
 from riskbound.ros.forecast_codec import forecast_to_cloud
 from riskbound.ros.setting_parameters import checked_changes, declare_settings
 from riskbound.ros.node_main import spin_node
 from riskbound.ros.throttled_warnings import ThrottledWarnings
+from riskbound.settings_table import SettingSpec
 from riskbound.tracking.gating import covariance_ellipses
 from riskbound.tracking.settings import TRACKER_SPECS, TrackerSettings
 from riskbound.tracking.tracker import MultiTargetTracker

@@ -2,17 +2,16 @@
 
 The watchdog node turns this table into ROS parameter descriptors; the core validates with it too,
 so a value rejected on the robot is rejected for the same reason in a script. The deadline and the
-command limits default to the planner's defaults (riskbound.planning.settings), so that a planner
-and a watchdog started without parameter files agree.
+command limits equal the planner's defaults (riskbound.planning.settings; test_supervision_settings
+holds the two in step), so that a planner and a watchdog started without parameter files agree. The
+watchdog checks the planner's output and does not import the planner.
 """
 
 from dataclasses import dataclass, replace
 
-from riskbound.planning.settings import PlannerSettings, SettingSpec, validate_fields
+from riskbound.settings_table import SettingSpec, validate_fields
 
 STOP_MODES = ("zero", "ramp")
-
-_PLANNER = PlannerSettings()
 
 WATCHDOG_SPECS = (
     SettingSpec("control_rate_hz", 10.0, "cmd_vel publications per second", 1.0, 100.0, read_only=True),
@@ -20,7 +19,7 @@ WATCHDOG_SPECS = (
                 "soon as a check finds a stopping fault (≥ control_rate_hz)", 1.0, 1000.0, read_only=True),
     SettingSpec("diagnostics_rate_hz", 1.0, "/diagnostics publications per second", 0.1, 10.0,
                 read_only=True),
-    SettingSpec("deadline_ms", round(1e3 * _PLANNER.deadline_s, 6),
+    SettingSpec("deadline_ms", 80.0,
                 "solve-time deadline; a longer solve degrades health (planner: solver_time_fraction / "
                 "control_rate_hz) [ms]", 0.0, 1e4, low_open=True),
     SettingSpec("deadline_misses_to_stop", 3, "consecutive solves over the deadline that stop the robot",
@@ -41,14 +40,14 @@ WATCHDOG_SPECS = (
                 "stopped; true: recovery_cycles cycles in a row without a stopping fault resume the "
                 "robot as degraded, so warned plans (a planner with infeasible_response "
                 "least_violation) can drive it away after a stop"),
-    SettingSpec("max_speed_mps", _PLANNER.max_speed_mps, "a planned command faster than this stops "
+    SettingSpec("max_speed_mps", 1.2, "a planned command faster than this stops "
                 "the robot [m/s]", 0.0, 20.0, low_open=True),
-    SettingSpec("max_turn_rate_radps", _PLANNER.max_turn_rate_radps, "a planned turn rate above this "
+    SettingSpec("max_turn_rate_radps", 1.5, "a planned turn rate above this "
                 "stops the robot [rad/s]", 0.0, 10.0, low_open=True),
     SettingSpec("stop_mode", "zero", "zero: publish zero velocity at once; ramp: decelerate from the "
                 "last published command within max_decel_mps2 / max_angular_decel_radps2",
                 choices=STOP_MODES),
-    SettingSpec("max_decel_mps2", _PLANNER.max_accel_mps2, "ramp stop: linear deceleration [m/s²]",
+    SettingSpec("max_decel_mps2", 1.5, "ramp stop: linear deceleration [m/s²]",
                 0.0, 20.0, low_open=True),
     SettingSpec("max_angular_decel_radps2", 3.0, "ramp stop: turn-rate deceleration [rad/s²]",
                 0.0, 100.0, low_open=True),

@@ -12,7 +12,7 @@ files keep the two in step.
 
 from dataclasses import dataclass, replace
 
-from riskbound.planning.settings import SettingSpec, validate_fields
+from riskbound.settings_table import SettingSpec, validate_fields
 from riskbound.tracking.filters import MOTION_MODELS
 
 TRACKER_SPECS = (
