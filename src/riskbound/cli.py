@@ -12,7 +12,7 @@ import sys
 SUBCOMMANDS = {
     "demo": ("riskbound.demo", "run the planner on a scripted plaza crossing and write a PNG and a summary"),
     "bench": ("riskbound.bench", "benchmarks: planner solve times and others; prints figures, writes JSON/PNG"),
-    "param": ("riskbound.ros.param_client", "get, set or list a running node's parameters"),
+    "tune": ("riskbound.ros.tune", "show a running node's settings, read one, or apply NAME=VALUE changes"),
     "crowd": ("riskbound.crowd.cli", "generate a synthetic crowd bag from a scenario file"),
     "review": ("riskbound.logs.review.cli", "find near-misses in a recorded bag, explain them, replan them"),
     "launch": ("riskbound.launch_runner", "run a ROS 2 XML launch file of this package without the ROS launch tools"),
