@@ -52,7 +52,7 @@ def values_of(status):
 
 
 def run_cli(*args, timeout_s=30):
-    return subprocess.run([sys.executable, "-m", "riskbound.cli", "param", *args], capture_output=True,
+    return subprocess.run([sys.executable, "-m", "riskbound.cli", "tune", *args], capture_output=True,
                           text=True, timeout=timeout_s)
 
 
@@ -264,7 +264,7 @@ def test_inputs_in_plan_command_and_status_out(graph):
 
 def test_risk_level_set_with_cli_shows_in_next_status(graph):
     driver, _ = graph
-    done = run_cli("set", "planner", "risk_level", "0.02")
+    done = run_cli("planner", "risk_level=0.02")
     assert done.returncode == 0, done.stderr
     since = time.monotonic()
     status = wait_for(lambda: newest_ok_status(driver, since), 5.0, "an OK status after the change")
@@ -277,7 +277,7 @@ def test_risk_level_set_with_cli_shows_in_next_status(graph):
 def test_out_of_range_risk_level_is_rejected_with_reason(graph):
     driver, _ = graph
     before = values_of(wait_for(lambda: newest_ok_status(driver), 5.0, "an OK status"))["risk_level"]
-    rejected = run_cli("set", "planner", "risk_level", "0.7")
+    rejected = run_cli("planner", "risk_level=0.7")
     assert rejected.returncode == 1
     # rclpy checks the descriptor range first; its reason names the parameter and both bounds.
     assert "risk_level" in rejected.stderr and "0.5" in rejected.stderr and "0.0" in rejected.stderr
