@@ -4,6 +4,9 @@ No ROS graph: only the message classes. The reference for every decoded number i
 number rounded to IEEE 754 single precision by numpy (the schema stores float32).
 """
 
+import subprocess
+import sys
+
 import numpy as np
 import pytest
 from builtin_interfaces.msg import Time
@@ -11,7 +14,9 @@ from sensor_msgs.msg import PointCloud2, PointField
 from std_msgs.msg import Header
 
 from riskbound.motion.forecast import ObstacleForecast
-from riskbound.ros.forecast_codec import FIELD_NAMES, POINT_DTYPE, cloud_to_forecast, forecast_to_cloud
+from riskbound.forecast_schema import (FIELD_NAMES, POINT_DTYPE, POINT_FIELDS, POINTFIELD_FLOAT32, POINTFIELD_UINT32,
+                                      cloud_to_forecast)
+from riskbound.ros.forecast_codec import forecast_to_cloud
 
 
 def random_forecast(rng, tracks=3, steps=7):
@@ -57,6 +62,21 @@ def test_round_trip_field_by_field():
     np.testing.assert_array_equal(decoded.covariances, expected_cov)
     np.testing.assert_array_equal(decoded.half_extents, f32(forecast.half_extents[order]))
     assert decoded.problems() == []
+
+
+def test_schema_datatype_codes_are_the_message_constants():
+    # Reference: the constants of sensor_msgs/msg/PointField as generated for rclpy.
+    assert (POINTFIELD_UINT32, POINTFIELD_FLOAT32) == (PointField.UINT32, PointField.FLOAT32)
+    datatypes = {name: datatype for name, _, datatype, _ in POINT_FIELDS}
+    assert datatypes.pop("track_id") == datatypes.pop("step") == PointField.UINT32
+    assert set(datatypes.values()) == {PointField.FLOAT32}
+
+
+def test_the_schema_module_needs_no_ros_package():
+    code = ("import sys, riskbound.forecast_schema; "
+            "print(sorted(m for m in sys.modules if m.split('.')[0] in ('rclpy', 'sensor_msgs', 'std_msgs')))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"
 
 
 def test_points_in_any_order_decode_to_the_same_forecast():

@@ -25,8 +25,8 @@ from sensor_msgs.msg import PointCloud2
 from std_msgs.msg import Header
 from visualization_msgs.msg import Marker, MarkerArray
 
+from riskbound.forecast_schema import FIELD_NAMES, cloud_to_forecast
 from riskbound.ros.conversions import seconds_to_stamp, stamp_to_seconds, yaw_to_quaternion
-from riskbound.ros.forecast_codec import FIELD_NAMES, cloud_to_forecast
 
 from node_helpers import stop_process_group, wait_for
 

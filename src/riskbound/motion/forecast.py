@@ -1,7 +1,7 @@
 """Obstacle forecasts: predicted positions, headings and covariances of tracked obstacles over time.
 
 The tracker writes them, the planner reads them; both go through this container. On the wire it is
-the `obstacle_forecast` PointCloud2 (see riskbound.ros.forecast_codec).
+the `obstacle_forecast` PointCloud2 (point layout: riskbound.forecast_schema).
 """
 
 from dataclasses import dataclass

@@ -26,12 +26,12 @@ from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy, qos_profi
 from sensor_msgs.msg import PointCloud2
 from trajectory_msgs.msg import MultiDOFJointTrajectory
 
+from riskbound.forecast_schema import cloud_to_forecast
 from riskbound.motion.forecast import ObstacleForecast
 from riskbound.planning.mpc import ChanceConstrainedMPC
 from riskbound.planning.settings import PLANNER_SPECS, PlannerSettings
 from riskbound.ros import plan_messages
 from riskbound.ros.conversions import quaternion_to_yaw, stamp_to_seconds
-from riskbound.ros.forecast_codec import cloud_to_forecast
 from riskbound.ros.setting_parameters import parameter_descriptor
 from riskbound.ros.node_main import spin_node
 from riskbound.ros.throttled_warnings import ThrottledWarnings

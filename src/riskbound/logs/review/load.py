@@ -33,7 +33,7 @@ from rosbags.highlevel import AnyReader
 
 from riskbound.logs.bag_io import TYPESTORE, BagError, quaternion_xyzw_to_yaw, read_custom_data
 from riskbound.logs.review import cdr
-from riskbound.ros.forecast_codec import FIELD_NAMES, POINT_DTYPE, cloud_to_forecast
+from riskbound.forecast_schema import FIELD_NAMES, POINT_DTYPE, cloud_to_forecast
 
 ODOMETRY = "nav_msgs/msg/Odometry"
 POSE_ARRAY = "geometry_msgs/msg/PoseArray"

@@ -15,7 +15,7 @@ import numpy as np
 from riskbound.logs import bag_io
 from riskbound.logs.review import load
 from riskbound.motion.forecast import ObstacleForecast
-from riskbound.ros.forecast_codec import FIELD_NAMES, POINT_DTYPE, forecast_points
+from riskbound.forecast_schema import FIELD_NAMES, POINT_DTYPE, forecast_points
 
 _T = bag_io.TYPESTORE.types
 _UINT32, _FLOAT32 = 6, 7  # sensor_msgs/PointField datatypes
