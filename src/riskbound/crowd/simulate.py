@@ -7,6 +7,11 @@ Groups (friends, families) share their route choices, their desired speed and th
 point, and a spring pulls a member back towards the group's centre when it strays further than
 `GROUP_SPREAD_M`. The attraction terms of the 1995 model are not used; this spring and its
 constants are our own choice, no source.
+
+Walkers who react to a robot: `CrowdSimulation` runs the same simulation one frame at a time, and
+each frame interval can be given where the robot is (`RobotPresence` of riskbound.crowd.social_force,
+held for the interval's integration steps). With strength 0, or with no robot, every frame is the
+one `simulate` gives for the same seed, bit for bit.
 """
 
 from dataclasses import dataclass, field
@@ -206,12 +211,12 @@ class _Crowd:
         pull[sizes[member_of] < 2] = 0.0
         return offset / np.maximum(distance, 1e-9)[:, None] * pull[:, None]
 
-    def advance(self, dt_s):
+    def advance(self, dt_s, robot=None):
         if len(self.ids) == 0:
             return
         self.positions, self.velocities, contacts = step(
             self.positions, self.velocities, self.targets, self.desired_speeds, self.radii,
-            self.geometry, self.params, dt_s, extra_forces=self.group_forces())
+            self.geometry, self.params, dt_s, extra_forces=self.group_forces(), robot=robot)
         self.run.contacts += contacts
         speed = np.linalg.norm(self.velocities, axis=1)
         moving = speed > HEADING_SPEED_M_S
@@ -261,48 +266,105 @@ class _Crowd:
             self.run.min_boundary_gap_m = min(self.run.min_boundary_gap_m, float(clearance.min()))
 
 
-def simulate(scenario, seed, duration_s=None, rate_hz=10.0, params=None, progress=None):
-    """Simulate `scenario` and return a CrowdRun with frames at `rate_hz`.
+class CrowdSimulation:
+    """A scenario's crowd advanced one recorded frame at a time (see the module docstring).
+
+        simulation = CrowdSimulation(scenario, seed, duration_s, rate_hz)
+        frame = simulation.first_frame()          # runs the warm-up
+        while not simulation.finished:
+            frame = simulation.next_frame(robot)  # robot: RobotPresence or None
 
     seed: an int, a numpy SeedSequence or Generator; the same seed gives the same run.
-
     Time zero is the start of the warm-up; frames cover [warmup_s, warmup_s + duration_s].
     `progress(fraction)` is called now and then with the share of simulated time done.
     """
-    duration_s = scenario.duration_s if duration_s is None else float(duration_s)
-    if not np.isfinite(duration_s) or duration_s <= 0.0:
-        raise ValueError(f"duration_s={duration_s!r}: must be > 0")
-    dt = scenario.sim_step_s
-    steps_per_frame = 1.0 / (rate_hz * dt) if rate_hz > 0 else 0.0
-    if rate_hz <= 0 or abs(steps_per_frame - round(steps_per_frame)) > 1e-6 or round(steps_per_frame) < 1:
-        raise ValueError(f"rate_hz={rate_hz!r}: must be 1 / (a whole multiple of sim_step_s = {dt} s), "
-                         f"e.g. {1.0 / dt:g}, {1.0 / (2 * dt):g} or {1.0 / (4 * dt):g}")
-    steps_per_frame = int(round(steps_per_frame))
-    params = SocialForceParameters() if params is None else params
-    rng = np.random.default_rng(seed)
-    crowd = _Crowd(scenario, rng, params)
-    for i, initial in enumerate(scenario.initial):
-        crowd.spawn_initial(initial, f"initial[{i}]")
-    # Retries while packing the initial crowd are not arrivals that were turned away.
-    crowd.run.turned_away = 0
-    next_arrival = [rng.exponential(1.0 / source.rate_per_s) for source in scenario.sources]
 
-    warmup_steps = int(round(scenario.warmup_s / dt))
-    record_steps = int(round(duration_s * rate_hz)) * steps_per_frame
-    total_steps = warmup_steps + record_steps
-    for k in range(total_steps + 1):
-        time_s = k * dt
-        for j, source in enumerate(scenario.sources):
+    def __init__(self, scenario, seed, duration_s=None, rate_hz=10.0, params=None, progress=None):
+        duration_s = scenario.duration_s if duration_s is None else float(duration_s)
+        if not np.isfinite(duration_s) or duration_s <= 0.0:
+            raise ValueError(f"duration_s={duration_s!r}: must be > 0")
+        dt = scenario.sim_step_s
+        steps_per_frame = 1.0 / (rate_hz * dt) if rate_hz > 0 else 0.0
+        if rate_hz <= 0 or abs(steps_per_frame - round(steps_per_frame)) > 1e-6 or round(steps_per_frame) < 1:
+            raise ValueError(f"rate_hz={rate_hz!r}: must be 1 / (a whole multiple of sim_step_s = {dt} s), "
+                             f"e.g. {1.0 / dt:g}, {1.0 / (2 * dt):g} or {1.0 / (4 * dt):g}")
+        self.scenario = scenario
+        self.dt_s = dt
+        self.steps_per_frame = int(round(steps_per_frame))
+        self.progress = progress
+        self.rng = np.random.default_rng(seed)
+        self.crowd = _Crowd(scenario, self.rng, SocialForceParameters() if params is None else params)
+        self.warmup_steps = int(round(scenario.warmup_s / dt))
+        self.total_steps = self.warmup_steps + int(round(duration_s * rate_hz)) * self.steps_per_frame
+        self.k = None  # integration steps done; None before the warm-up
+        self.next_arrival = []
+
+    @property
+    def run(self):
+        """The CrowdRun recorded so far."""
+        return self.crowd.run
+
+    @property
+    def finished(self):
+        return self.k is not None and self.k >= self.total_steps
+
+    def _arrivals(self):
+        time_s = self.k * self.dt_s
+        for j, source in enumerate(self.scenario.sources):
             # Poisson arrivals: exponential gaps between groups.
-            while next_arrival[j] <= time_s:
-                crowd.spawn_at_source(source)
-                next_arrival[j] += rng.exponential(1.0 / source.rate_per_s)
-        if k >= warmup_steps and (k - warmup_steps) % steps_per_frame == 0:
-            crowd.record(time_s)
-        if k < total_steps:
-            crowd.advance(dt)
-        if progress is not None and k % 100 == 0:
-            progress(k / max(total_steps, 1))
-    if progress is not None:
-        progress(1.0)
-    return crowd.run
+            while self.next_arrival[j] <= time_s:
+                self.crowd.spawn_at_source(source)
+                self.next_arrival[j] += self.rng.exponential(1.0 / source.rate_per_s)
+
+    def _report(self):
+        if self.progress is not None and self.k % 100 == 0:
+            self.progress(self.k / max(self.total_steps, 1))
+
+    def first_frame(self):
+        """Place the initial crowd, run the warm-up (no robot) and record the first frame."""
+        if self.k is not None:
+            raise RuntimeError("first_frame: the simulation has already started")
+        crowd = self.crowd
+        for i, initial in enumerate(self.scenario.initial):
+            crowd.spawn_initial(initial, f"initial[{i}]")
+        # Retries while packing the initial crowd are not arrivals that were turned away.
+        crowd.run.turned_away = 0
+        self.next_arrival = [self.rng.exponential(1.0 / source.rate_per_s) for source in self.scenario.sources]
+        self.k = 0
+        while True:
+            self._arrivals()
+            if self.k == self.warmup_steps:
+                crowd.record(self.k * self.dt_s)
+                self._report()
+                return crowd.run.frames[-1]
+            crowd.advance(self.dt_s)
+            self._report()
+            self.k += 1
+
+    def next_frame(self, robot=None):
+        """Advance one frame interval with `robot` (a RobotPresence, or None) held in place and
+        record the frame; returns it."""
+        if self.k is None:
+            raise RuntimeError("next_frame: call first_frame first")
+        if self.finished:
+            raise RuntimeError(f"next_frame: the recording of {len(self.run.frames)} frames is complete")
+        for _ in range(self.steps_per_frame):
+            self.crowd.advance(self.dt_s, robot)
+            self.k += 1
+            self._arrivals()
+            if self.k < self.total_steps:
+                self._report()
+        self.crowd.record(self.k * self.dt_s)
+        if self.finished and self.progress is not None:
+            self.progress(1.0)
+        return self.run.frames[-1]
+
+
+def simulate(scenario, seed, duration_s=None, rate_hz=10.0, params=None, progress=None):
+    """Simulate `scenario` without a robot and return a CrowdRun with frames at `rate_hz`
+    (arguments as CrowdSimulation)."""
+    simulation = CrowdSimulation(scenario, seed, duration_s, rate_hz, params, progress)
+    simulation.first_frame()
+    while not simulation.finished:
+        simulation.next_frame()
+    return simulation.run

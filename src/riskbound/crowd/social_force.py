@@ -36,6 +36,13 @@ apart along the line of centres and their closing velocity is removed; discs tha
 obstacle are put back on its surface and lose the velocity into it (a hard-contact constraint,
 common practice in crowd simulation, no source). `step` reports how many contacts it resolved.
 
+The robot, when the walkers react to it, is one more β for every walker: the same elliptical
+potential around the robot's disc and its step s = |v_robot| Δt, with its own strength
+V_robot (`RobotPresence.strength_m2_s2`; the pedestrians' V⁰ = 2.1 m²/s² treats the robot as a
+person, 0 leaves the walkers blind to it and skips the term entirely, so the crowd is exactly the
+non-reacting one). The robot is not part of the hard-contact step: walkers may still touch it,
+and those contacts are what a closed loop counts.
+
 Integration: over one step h the interaction forces are held constant and the relaxation term is
 integrated exactly (exponential integrator), so a lone walker follows the analytic
 v(t) = v⁰ (1 − exp(−t/τ)) at any step size.
@@ -145,6 +152,56 @@ def boundary_clearance(points, radii, geometry):
     return clearance
 
 
+@dataclass(frozen=True)
+class RobotPresence:
+    """The robot as the walkers see it during one step: a disc at `position` (2,) [m] moving with
+    `velocity` (2,) [m/s], of radius `radius_m`, repelling with `strength_m2_s2` (V_robot, ≥ 0)."""
+
+    position: np.ndarray
+    velocity: np.ndarray
+    radius_m: float
+    strength_m2_s2: float
+
+    def __post_init__(self):
+        if not (np.isfinite(self.strength_m2_s2) and self.strength_m2_s2 >= 0.0):
+            raise ValueError(f"strength_m2_s2={self.strength_m2_s2!r}: must be a finite number >= 0")
+        if not (np.isfinite(self.radius_m) and self.radius_m >= 0.0):
+            raise ValueError(f"radius_m={self.radius_m!r}: must be a finite number >= 0")
+        for name in ("position", "velocity"):
+            value = np.asarray(getattr(self, name), dtype=float)
+            if value.shape != (2,) or not np.all(np.isfinite(value)):
+                raise ValueError(f"{name}={getattr(self, name)!r}: must be two finite numbers")
+
+
+def _elliptical_repulsion(r, speed, heading, contact_m, strength_m2_s2, params):
+    """f = −∇_r V(b) of every β on every α, (N, M, 2) [m/s²], before the view weight.
+
+    r: (N, M, 2) r_α − r_β; speed, heading: (M,), (M, 2) of β; contact_m: (N, M) sum of the radii.
+    """
+    step = (speed * params.step_horizon_s)[None, :, None] * heading[None, :, :]  # s e_β
+    r_ahead = r - step
+    norm_r = np.maximum(np.linalg.norm(r, axis=2), _EPS_M)
+    norm_ahead = np.maximum(np.linalg.norm(r_ahead, axis=2), _EPS_M)
+    s = np.broadcast_to(speed[None, :] * params.step_horizon_s, norm_r.shape)
+    sum_norms = norm_r + norm_ahead
+    b = 0.5 * np.sqrt(np.maximum(sum_norms ** 2 - s ** 2, _EPS_M ** 2))
+    gap = b - contact_m
+    # dV/db = −V/σ; ∂b/∂r = (|r| + |r − s e|)(r/|r| + (r − s e)/|r − s e|) / (4b)
+    # Saturated at contact (module docstring): an overlap does not grow the repulsion further.
+    magnitude = (strength_m2_s2 / params.pedestrian_range_m
+                 * np.exp(-np.maximum(gap, 0.0) / params.pedestrian_range_m))
+    db_dr = (sum_norms / (4.0 * np.maximum(b, _EPS_M)))[..., None] * (
+        r / norm_r[..., None] + r_ahead / norm_ahead[..., None])
+    return magnitude[..., None] * db_dr, norm_r
+
+
+def _view_weight(r, norm_r, directions, params):
+    """w = 1 where β lies within φ of e_α, c behind (N, M)."""
+    to_beta = -r / norm_r[..., None]
+    in_view = np.einsum("nd,nmd->nm", directions, to_beta) >= np.cos(np.radians(params.view_half_angle_deg))
+    return np.where(in_view, 1.0, params.behind_weight)
+
+
 def pedestrian_forces(positions, velocities, directions, radii, params):
     """Sum over β of the weighted repulsion f_αβ on each α (N, 2) [m/s²]."""
     count = len(positions)
@@ -153,26 +210,23 @@ def pedestrian_forces(positions, velocities, directions, radii, params):
     r = positions[:, None, :] - positions[None, :, :]               # r_α − r_β, (N, N, 2)
     speed = np.linalg.norm(velocities, axis=1)
     heading = velocities / np.maximum(speed, _EPS_M)[:, None]
-    step = (speed * params.step_horizon_s)[None, :, None] * heading[None, :, :]  # s e_β
-    r_ahead = r - step
-    norm_r = np.maximum(np.linalg.norm(r, axis=2), _EPS_M)
-    norm_ahead = np.maximum(np.linalg.norm(r_ahead, axis=2), _EPS_M)
-    s = np.broadcast_to(speed[None, :] * params.step_horizon_s, norm_r.shape)
-    sum_norms = norm_r + norm_ahead
-    b = 0.5 * np.sqrt(np.maximum(sum_norms ** 2 - s ** 2, _EPS_M ** 2))
-    gap = b - (radii[:, None] + radii[None, :])
-    # dV/db = −V/σ; ∂b/∂r = (|r| + |r − s e|)(r/|r| + (r − s e)/|r − s e|) / (4b)
-    # Saturated at contact (module docstring): an overlap does not grow the repulsion further.
-    magnitude = (params.pedestrian_strength_m2_s2 / params.pedestrian_range_m
-                 * np.exp(-np.maximum(gap, 0.0) / params.pedestrian_range_m))
-    db_dr = (sum_norms / (4.0 * np.maximum(b, _EPS_M)))[..., None] * (
-        r / norm_r[..., None] + r_ahead / norm_ahead[..., None])
-    force = magnitude[..., None] * db_dr
-    # β is in α's view when the direction to β lies within φ of e_α.
-    to_beta = -r / norm_r[..., None]
-    in_view = np.einsum("nd,nmd->nm", directions, to_beta) >= np.cos(np.radians(params.view_half_angle_deg))
-    weight = np.where(in_view, 1.0, params.behind_weight)
+    force, norm_r = _elliptical_repulsion(r, speed, heading, radii[:, None] + radii[None, :],
+                                          params.pedestrian_strength_m2_s2, params)
+    weight = _view_weight(r, norm_r, directions, params)
     np.fill_diagonal(weight, 0.0)
+    return np.einsum("nm,nmd->nd", weight, force)
+
+
+def robot_forces(positions, directions, radii, robot, params):
+    """Repulsion of the robot's disc on each walker (N, 2) [m/s²] (module docstring)."""
+    centre = np.asarray(robot.position, dtype=float)
+    velocity = np.asarray(robot.velocity, dtype=float).reshape(1, 2)
+    r = positions[:, None, :] - centre[None, None, :]                 # r_α − r_robot, (N, 1, 2)
+    speed = np.linalg.norm(velocity, axis=1)
+    heading = velocity / np.maximum(speed, _EPS_M)[:, None]
+    force, norm_r = _elliptical_repulsion(r, speed, heading, radii[:, None] + robot.radius_m,
+                                          robot.strength_m2_s2, params)
+    weight = _view_weight(r, norm_r, directions, params)
     return np.einsum("nm,nmd->nd", weight, force)
 
 
@@ -195,13 +249,15 @@ def boundary_forces(positions, radii, geometry, params):
     return total
 
 
-def step(positions, velocities, targets, desired_speeds, radii, geometry, params, dt_s, extra_forces=None):
+def step(positions, velocities, targets, desired_speeds, radii, geometry, params, dt_s, extra_forces=None,
+         robot=None):
     """Advance all walkers by dt_s. Returns new (positions, velocities, contacts): positions and
     velocities (N, 2) and the number of contacts resolved in this step.
 
     targets: (N, 2) points the walkers head for; desired_speeds: (N,) v⁰ [m/s];
     radii: (N,) body radii [m]; extra_forces: optional (N, 2) [m/s²] added to the interactions
-    (the simulation uses it to keep groups together).
+    (the simulation uses it to keep groups together); robot: an optional RobotPresence the
+    walkers react to (None or strength 0: they do not).
     """
     positions = np.asarray(positions, dtype=float)
     velocities = np.asarray(velocities, dtype=float)
@@ -214,6 +270,8 @@ def step(positions, velocities, targets, desired_speeds, radii, geometry, params
     interaction += boundary_forces(positions, radii, geometry, params)
     if extra_forces is not None:
         interaction += extra_forces
+    if robot is not None and robot.strength_m2_s2 > 0.0:
+        interaction += robot_forces(positions, directions, radii, robot, params)
     interaction = _limit_norm(interaction, params.max_interaction_accel_mps2)
     tau = params.relaxation_time_s
     # Exact solution of dv/dt = (v∞ − v)/τ with v∞ = v⁰e + τf held constant over the step.
