@@ -140,7 +140,7 @@ def test_detector_statistics_match_the_settings(tmp_path):
 def small_bags(tmp_path_factory):
     root = tmp_path_factory.mktemp("bags")
     for storage in ("mcap", "sqlite3"):
-        generate_crowd_bag(SCENARIO, root / storage, seed=1, duration_s=2.0, storage=storage)
+        generate_crowd_bag(SCENARIO, root / storage, seed=1, duration_s=2.0, bag_format=storage)
     return root
 
 
@@ -224,31 +224,34 @@ def test_committed_bag_is_small_complete_and_reproducible(tmp_path):
         np.testing.assert_allclose(regenerated.truth.positions[k], bag.truth.positions[k], atol=1e-6)
 
 
-def _cli(*arguments):
+def _cli(*arguments, command="crowd"):
     env = dict(os.environ, PYTHONUNBUFFERED="1")
-    return subprocess.run([sys.executable, "-m", "riskbound.cli", "crowd", *map(str, arguments)],
+    return subprocess.run([sys.executable, "-m", "riskbound.cli", command, *map(str, arguments)],
                           capture_output=True, text=True, timeout=CLI_TIMEOUT_S, env=env, cwd=ROOT)
 
 
 def test_cli_writes_a_bag_and_reports_damaged_ones_without_a_traceback(small_bags, tmp_path):
     output = tmp_path / "cli_bag"
-    done = _cli(SCENARIO, "-o", output, "--duration-s", 1, "--storage", "sqlite3", "--seed", 3)
+    done = _cli(SCENARIO, "--out", output, "--duration-s", 1, "--bag-format", "sqlite3", "--seed", 3)
     assert done.returncode == 0, done.stderr
     assert "wrote" in done.stdout and "walkers: 40 appeared" in done.stdout
     assert bag_io.read_crowd_bag(output).storage == "sqlite3"
+    checked = _cli(output, command="bagcheck")
+    assert checked.returncode == 0 and f"{output} (sqlite3)" in checked.stdout, checked.stderr
+    assert "/crowd_truth: 11 messages" in checked.stdout
 
     damaged = _damaged_copy(small_bags, tmp_path, "mcap", _truncate)
-    done = _cli("--info", damaged)
+    done = _cli(damaged, command="bagcheck")
     assert done.returncode == 2
-    assert "riskbound crowd: error:" in done.stderr and str(damaged) in done.stderr
+    assert "riskbound bagcheck: error:" in done.stderr and str(damaged) in done.stderr
     assert "Traceback" not in done.stderr + done.stdout
 
     bad_scenario = tmp_path / "bad.yaml"
     bad_scenario.write_text(SCENARIO.read_text().replace("distribution: normal", "distribution: gauss"))
-    done = _cli(bad_scenario, "-o", tmp_path / "never")
+    done = _cli(bad_scenario, "--out", tmp_path / "never")
     assert done.returncode == 2
     assert "desired_speed.distribution='gauss': allowed values are constant, normal, uniform" in done.stderr
     assert "Traceback" not in done.stderr and not (tmp_path / "never").exists()
 
-    done = _cli(SCENARIO, "-o", output)
+    done = _cli(SCENARIO, "--out", output)
     assert done.returncode == 2 and "already exists" in done.stderr

@@ -19,7 +19,7 @@ The replayed walkers cannot react to the robot, so the parameters use the least_
 infeasible response (see config/drone_closed_loop.yaml): a stop in a walker's path is a collision.
 
 Parameters: config/drone_closed_loop.yaml (its comments give every difference from drone.yaml) and
-the replay at a quarter of real time (rate 0.25, riskbound.closed_loop.DEFAULT_RATE), so that the
+the replay at a quarter of real time (speed 0.25, riskbound.closed_loop.DEFAULT_SPEED), so that the
 seven node processes share the two cores without falling behind the bag's clock.
 """
 
@@ -30,7 +30,7 @@ import pytest
 from riskbound.closed_loop import run_closed_loop
 from riskbound.logs import bag_io
 
-REPLAY_RATE = 0.25
+REPLAY_SPEED = 0.25
 TIME_LIMIT_S = 160.0
 CYCLES_REPORTED_FRACTION = 0.95
 RECORDED_TOPICS = {"/odom", "/cmd_vel", "/cmd_vel_plan", "/planner_status", "/obstacle_forecast", "/detections",
@@ -41,7 +41,7 @@ RECORDED_TOPICS = {"/odom", "/cmd_vel", "/cmd_vel_plan", "/planner_status", "/ob
 def run(tmp_path_factory):
     assert os.environ["ROS_AUTOMATIC_DISCOVERY_RANGE"] == "LOCALHOST"
     out = tmp_path_factory.mktemp("closed_loop")
-    result = run_closed_loop(out, params_file=None, rate=REPLAY_RATE, time_limit_s=TIME_LIMIT_S)
+    result = run_closed_loop(out, params_file=None, speed=REPLAY_SPEED, time_limit_s=TIME_LIMIT_S)
     s = result.summary
     print(f"\nclosed loop: solve ms median {s.solve_ms_median:.1f} (p95 {s.solve_ms_p95:.1f}, max "
           f"{s.solve_ms_max:.1f}, {s.solves} solves); minimum clearance {s.min_clearance_m:.3f} m; "

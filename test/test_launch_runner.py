@@ -21,7 +21,7 @@ import pytest
 from riskbound.launching.xml_description import LaunchDescription, LaunchFileError, package_share
 
 REPO = Path(__file__).resolve().parents[1]
-STARTED = re.compile(r"^\[launch\] started '([^']+)' \(pid (\d+)\)")
+STARTED = re.compile(r"^runner\s+│ started '([^']+)' \(pid (\d+)\)")
 
 
 def write(path, text):
@@ -143,7 +143,7 @@ def test_arguments_substitutions_include_and_namespaces(tmp_path, monkeypatch):
           </group>
           <node pkg="riskbound" exec="goal_node" name="skipped" unless="$(var with_goal)"/>
           <node pkg="riskbound" exec="recorder_node" name="recorder" namespace="/abs">
-            <param name="output" value=""/>
+            <param name="bag_dir" value=""/>
           </node>
         </launch>
         """)
@@ -159,7 +159,7 @@ def test_arguments_substitutions_include_and_namespaces(tmp_path, monkeypatch):
     assert (goal.name, goal.namespace, goal.output, goal.on_exit_shutdown) == ("goal_r2_a", "/r2/inner", "log", False)
     assert goal.parameters == [("value", "x", "0.5"), ("value", "frame_id", "base")]
     # An empty value is passed as YAML's empty string: rcl refuses `name:=` with nothing after it.
-    assert recorder.namespace == "/abs" and recorder.ros_arguments()[-2:] == ["-p", "output:=''"]
+    assert recorder.namespace == "/abs" and recorder.ros_arguments()[-2:] == ["-p", "bag_dir:=''"]
     assert [n.name for n in LaunchDescription(top, {"with_goal": "false"}).nodes] == ["sim_robot", "skipped",
                                                                                         "recorder"]
 
@@ -196,14 +196,14 @@ def test_command_line_errors_exit_2_before_anything_starts(tmp_path):
 def test_package_files_resolve_and_print_their_commands():
     """The package's own launch files parse in the standalone install; find-pkg-share finds the tree."""
     assert (package_share("riskbound") / "launch" / "stack.launch.xml").is_file()
-    done = cli("launch", "crowd_replay.launch.xml", "bag:=test/data/crowd_courtyard_40", "rate:=0.5", "--print")
+    done = cli("launch", "crowd_replay.launch.xml", "bag:=test/data/crowd_courtyard_40", "speed:=0.5", "--dry-run")
     assert done.returncode == 0, done.stderr
     commands = dict(line.split(": ", 1) for line in done.stdout.splitlines())
     assert set(commands) == {"tracker", "planner", "watchdog", "sim_robot", "goal_publisher", "recorder", "replay"}
     assert f"--params-file {REPO / 'config' / 'drone.yaml'}" in commands["planner"]
     assert "-p use_sim_time:=true" in commands["planner"] and "-m riskbound.ros.planner_node" in commands["planner"]
-    assert "-p rate:=0.5" in commands["replay"]
-    shown = cli("launch", "stack.launch.xml", "--show-args")
+    assert "-p speed:=0.5" in commands["replay"]
+    shown = cli("launch", "stack.launch.xml", "--arguments")
     assert shown.returncode == 0
     assert "params_file (default: '$(find-pkg-share riskbound)/config/drone.yaml')" in shown.stdout
 
@@ -235,11 +235,12 @@ def test_arguments_and_parameter_files_reach_the_nodes_and_ctrl_c_stops_all(tmp_
     try:
         assert runner.read_until(lambda line: "goal (4.5, 0.0)" in line, 60.0), runner.text
         node = "/lr_test/sim_robot"
-        values = [cli("param", "get", node, name, "--timeout-s", "20").stdout.strip()
+        values = [cli("tune", node, name, "--timeout-s", "20").stdout.strip()
                   for name in ("max_accel_mps2", "command_timeout_s", "initial_x", "rate_hz")]
         assert values == ["2.25", "0.75", "3.25", "50.0"]  # file, file, launch argument, node default
         assert set(runner.pids) == {"sim_robot", "goal_lr_test"}
-        assert "[goal_lr_test] [INFO]" in runner.text  # output="screen" is echoed with the node's name
+        # output="screen" is echoed after the node's name, padded to the longest name, and a bar.
+        assert re.search(r"^goal_lr_test │ \[INFO\]", runner.text, re.MULTILINE), runner.text
         os.killpg(runner.process.pid, signal.SIGINT)
         code = runner.finish(30.0)
         assert code == 0, runner.text

@@ -1,7 +1,7 @@
 """Replay and recorder nodes: what a bag holds goes out on time and comes back into a new bag.
 
 References (common practice of rosbag2 players and recorders, no numbered source): a player
-publishes each stored message at its log time scaled by the rate factor, unchanged; a recorder
+publishes each stored message at its log time scaled by the speed factor, unchanged; a recorder
 stores the serialised bytes it receives with the reception time as log time; the stored offered
 QoS is what a player republishes with. Playback arithmetic is checked against the closed forms
 in riskbound.logs.playback's docstring.
@@ -56,7 +56,7 @@ def small_bag(tmp_path_factory):
 # --- playback arithmetic, no ROS --------------------------------------------------------------------
 
 def test_window_topics_and_clock_exclusion(small_bag):
-    playback = BagPlayback(ReplaySettings(bag=str(small_bag), start_offset_s=0.5, duration_s=1.0))
+    playback = BagPlayback(ReplaySettings(bag=str(small_bag), skip_first_s=0.5, window_s=1.0))
     assert set(playback.topics) == {bag_io.TOPIC_DETECTIONS, bag_io.TOPIC_TRUTH}  # own /clock replaces the bag's
     messages = list(playback.messages())
     times = [t for t, _, _ in messages]
@@ -64,13 +64,13 @@ def test_window_topics_and_clock_exclusion(small_bag):
     assert times[0] == START_NS + 500_000_000 and times[-1] <= START_NS + 1_500_000_000
     assert sum(1 for _, topic, _ in messages if topic == bag_io.TOPIC_DETECTIONS) == 11  # frames 5..15
     assert playback.topics[bag_io.TOPIC_DETECTIONS].qos.reliability == QosReliability.BEST_EFFORT
-    assert playback.window_s == pytest.approx(1.0)
-    with_clock = BagPlayback(ReplaySettings(bag=str(small_bag), publish_clock=False, topics=[bag_io.TOPIC_CLOCK]))
+    assert playback.pass_length_s == pytest.approx(1.0)
+    with_clock = BagPlayback(ReplaySettings(bag=str(small_bag), drive_sim_time=False, only_topics=[bag_io.TOPIC_CLOCK]))
     assert list(with_clock.topics) == [bag_io.TOPIC_CLOCK] and len(list(with_clock.messages())) == 10 * FRAMES
 
 
-def test_timeline_scales_by_the_rate_and_ticks_do_not_burst():
-    timeline = PassTimeline(window_start_ns=START_NS, rate=2.0, start_wall_s=100.0)
+def test_timeline_scales_by_the_speed_and_ticks_do_not_burst():
+    timeline = PassTimeline(window_start_ns=START_NS, speed=2.0, start_wall_s=100.0)
     assert timeline.due_wall_s(START_NS + 3_000_000_000) == pytest.approx(101.5)
     assert timeline.bag_time_ns(101.5) == START_NS + 3_000_000_000
     assert timeline.bag_time_ns(99.0) == START_NS  # before the pass started: the window start
@@ -83,9 +83,9 @@ def test_timeline_scales_by_the_rate_and_ticks_do_not_burst():
 
 @pytest.mark.parametrize("changes, words", [
     ({"bag": ""}, "bag='' is not allowed"),
-    ({"rate": 0.0}, "rate=0.0 is out of range: must be in (0.0, 100.0]"),
-    ({"clock_hz": 0.5}, "clock_hz=0.5 is out of range"),
-    ({"topics": ["/detections", ""]}, "must be a list of non-empty topic names"),
+    ({"speed": 0.0}, "speed=0.0 is out of range: must be in (0.0, 100.0]"),
+    ({"sim_time_hz": 0.5}, "sim_time_hz=0.5 is out of range"),
+    ({"only_topics": ["/detections", ""]}, "must be a list of non-empty topic names"),
 ])
 def test_invalid_settings_name_the_parameter(changes, words):
     with pytest.raises(ValueError, match=words.replace("(", r"\(").replace("[", r"\[").replace("]", r"\]")):
@@ -94,9 +94,9 @@ def test_invalid_settings_name_the_parameter(changes, words):
 
 def test_unknown_topic_and_offset_beyond_the_end_are_refused(small_bag):
     with pytest.raises(ValueError, match=r"/odom not in .* \(it has /clock, /crowd_truth, /detections\)"):
-        BagPlayback(ReplaySettings(bag=str(small_bag), topics=["/odom"]))
-    with pytest.raises(ValueError, match="start_offset_s=5.0 is out of range: the bag lasts 1.990 s"):
-        BagPlayback(ReplaySettings(bag=str(small_bag), start_offset_s=5.0))
+        BagPlayback(ReplaySettings(bag=str(small_bag), only_topics=["/odom"]))
+    with pytest.raises(ValueError, match="skip_first_s=5.0 is out of range: the bag lasts 1.990 s"):
+        BagPlayback(ReplaySettings(bag=str(small_bag), skip_first_s=5.0))
 
 
 def test_recorder_core_refuses_unknown_types_and_wrong_hashes(tmp_path):
@@ -129,17 +129,17 @@ def stop(process, signum=signal.SIGINT, timeout_s=20.0):
     return process.returncode
 
 
-def record_replay(small_bag, out, rate, use_sim_time, stop_signal):
+def record_replay(small_bag, out, speed, use_sim_time, stop_signal):
     """Record while replaying small_bag; returns (recorder exit code, replay exit code, logs)."""
     topics = "[/detections, /crowd_truth]"
-    recorder = start_node("recorder_node", out.with_suffix(".recorder.log"), "-p", f"output:={out}",
-                          "-p", f"topics:={topics}", "-p", f"use_sim_time:={'true' if use_sim_time else 'false'}",
+    recorder = start_node("recorder_node", out.with_suffix(".recorder.log"), "-p", f"bag_dir:={out}",
+                          "-p", f"only_topics:={topics}", "-p", f"use_sim_time:={'true' if use_sim_time else 'false'}",
                           "-p", "discovery_period_s:=0.1")
     replay = None
     try:
         replay = start_node("replay_node", out.with_suffix(".replay.log"), "-p", f"bag:={small_bag}",
-                            "-p", f"rate:={rate}", "-p", f"wait_for_subscribers:={topics}", "-p", "start_delay_s:=1.0",
-                            "-p", "wait_timeout_s:=30.0")
+                            "-p", f"speed:={speed}", "-p", f"await_listeners:={topics}", "-p", "pause_before_s:=1.0",
+                            "-p", "await_timeout_s:=30.0")
         replay_code = replay.wait(timeout=60)
         time.sleep(0.5)  # the last messages are on their way to the recorder
     finally:
@@ -178,7 +178,7 @@ def test_replayed_and_recorded_bag_has_the_same_messages_order_and_times(small_b
     assert offered[bag_io.TOPIC_TRUTH].durability == QosDurability.VOLATILE
 
 
-def test_rate_factor_on_wall_time_and_sigint_closes_the_bag(small_bag, tmp_path):
+def test_speed_factor_on_wall_time_and_sigint_closes_the_bag(small_bag, tmp_path):
     out = tmp_path / "fast"
     recorder_code, replay_code, logs = record_replay(small_bag, out, 2.0, False, signal.SIGINT)
     assert (recorder_code, replay_code) == (0, 0), logs

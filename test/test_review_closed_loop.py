@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 import yaml
-from test_closed_loop import REPLAY_RATE, TIME_LIMIT_S  # the recording test's own settings
+from test_closed_loop import REPLAY_SPEED, TIME_LIMIT_S  # the recording test's own settings
 
 from riskbound.cli import main
 from riskbound.closed_loop import DEFAULT_PARAMS, run_closed_loop
@@ -31,7 +31,7 @@ def recorded_bag(tmp_path_factory):
     if done:
         return done[0].parent
     out = tmp_path_factory.mktemp("closed_loop")
-    run_closed_loop(out, params_file=None, rate=REPLAY_RATE, time_limit_s=TIME_LIMIT_S)
+    run_closed_loop(out, params_file=None, speed=REPLAY_SPEED, time_limit_s=TIME_LIMIT_S)
     return out / "recorded"
 
 

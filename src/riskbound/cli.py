@@ -14,6 +14,7 @@ SUBCOMMANDS = {
     "bench": ("riskbound.bench", "benchmarks: planner solve times and others; prints figures, writes JSON/PNG"),
     "tune": ("riskbound.ros.tune", "show a running node's settings, read one, or apply NAME=VALUE changes"),
     "crowd": ("riskbound.crowd.cli", "generate a synthetic crowd bag from a scenario file"),
+    "bagcheck": ("riskbound.crowd.bag_check", "read a crowd bag completely and summarise it (exit 2 if damaged)"),
     "review": ("riskbound.logs.review.cli", "find near-misses in a recorded bag, explain them, replan them"),
     "launch": ("riskbound.launch_runner", "run a ROS 2 XML launch file of this package without the ROS launch tools"),
     "closedloop": ("riskbound.closed_loop", "replay a crowd bag through the full stack with a simulated robot and report"),

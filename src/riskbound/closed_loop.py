@@ -1,6 +1,6 @@
 """`riskbound closedloop`: the whole stack closed-loop on a replayed crowd, then a report.
 
-    riskbound closedloop [--bag BAG] [--out DIR] [--params-file F] [--rate R] [--time-limit-s T]
+    riskbound closedloop [--bag BAG] [--out DIR] [--params-file F] [--speed S] [--time-limit-s T]
 
 Runs launch/crowd_replay.launch.xml through `riskbound launch` (real processes, one per node):
 the crowd bag is replayed on its own clock, the tracker, planner and watchdog run on it, the
@@ -15,7 +15,7 @@ DIR/recorded, the node logs DIR/logs. `make demo` is this command with its defau
 Default bag: the committed test/data/crowd_courtyard_40 when running from the source tree,
 otherwise a fresh one generated from config/crowd_courtyard_40.yaml with its committed seed.
 Default parameters: config/drone_closed_loop.yaml (see there why not config/drone.yaml), replayed
-at a quarter of real time (--rate 0.25). The crossing takes about 15 s of bag time, so about a
+at a quarter of real time (--speed 0.25). The crossing takes about 15 s of bag time, so about a
 minute of wall time plus start-up (a whole 60 s bag would take 4 minutes).
 
 Exit codes: 0 goal reached without a collision; 1 goal not reached or a collision (footprints
@@ -49,7 +49,7 @@ DEFAULT_PARAMS = "config/drone_closed_loop.yaml"
 # solver's wall-time cap is not scaled, so solves are judged as on the robot. Measured at half
 # speed, one run in five lost cycles to a busy machine (solves over the cap, watchdog stops) and
 # ended with contacts; at a quarter, none of five.
-DEFAULT_RATE = 0.25
+DEFAULT_SPEED = 0.25
 LAUNCH_FILE = "crowd_replay.launch.xml"
 EXIT_FAILED, EXIT_USAGE = 1, 2
 # After SIGINT the runner needs its own stop timeouts (5 s + 5 s) and a margin to report.
@@ -139,12 +139,12 @@ def _stop_leftovers(log_path, log):
     return left
 
 
-def run_closed_loop(out_dir, bag=None, params_file=None, rate=DEFAULT_RATE, time_limit_s=240.0, goal_tolerance_m=0.3,
+def run_closed_loop(out_dir, bag=None, params_file=None, speed=DEFAULT_SPEED, time_limit_s=240.0, goal_tolerance_m=0.3,
                     log=print, review=False):
     """Run the closed loop and write its report into out_dir. Returns a ClosedLoopResult.
 
     bag: crowd bag (None: default_bag); params_file: ROS parameter file with planner, tracker,
-    watchdog and sim_robot sections (None: DEFAULT_PARAMS); rate: replay speed factor;
+    watchdog and sim_robot sections (None: DEFAULT_PARAMS); speed: replay speed factor;
     time_limit_s: wall-time limit of the run, start-up included; review: also write the review
     tool's report of the recording into out_dir/review.
     ValueError / BagError for bad arguments or bags.
@@ -154,8 +154,8 @@ def run_closed_loop(out_dir, bag=None, params_file=None, rate=DEFAULT_RATE, time
     out_dir.mkdir(parents=True, exist_ok=True)
     bag = Path(bag).resolve() if bag is not None else default_bag(out_dir, log)
     params_file = Path(params_file).resolve() if params_file is not None else _package_root() / DEFAULT_PARAMS
-    if not rate > 0.0:
-        raise ValueError(f"rate={rate!r} must be > 0")
+    if not speed > 0.0:
+        raise ValueError(f"speed={speed!r} must be > 0")
     planner = read_parameter_file(params_file).get("planner", {})
     robot_radius_m = float(planner.get("robot_radius_m", 0.3))
     control_rate_hz = float(planner.get("control_rate_hz", 10.0))
@@ -171,7 +171,7 @@ def run_closed_loop(out_dir, bag=None, params_file=None, rate=DEFAULT_RATE, time
         shutil.rmtree(logs)
 
     command = [sys.executable, "-m", "riskbound.cli", "launch", LAUNCH_FILE, f"bag:={bag}",
-               f"output_bag:={recorded}", f"params_file:={params_file}", f"rate:={float(rate)}",
+               f"recorded_bag:={recorded}", f"params_file:={params_file}", f"speed:={float(speed)}",
                f"start_x:={start[0]}", f"start_y:={start[1]}", f"goal_x:={goal[0]}", f"goal_y:={goal[1]}",
                "end_at_goal:=true", "--log-dir", str(logs)]
     environment = dict(os.environ)
@@ -179,7 +179,7 @@ def run_closed_loop(out_dir, bag=None, params_file=None, rate=DEFAULT_RATE, time
     environment.setdefault("ROS_DOMAIN_ID", str(random.randint(1, 101)))
     launch_log = out_dir / "launch.log"
     log(f"running {LAUNCH_FILE} on {bag.name}: robot {start} → goal {goal}, parameters {params_file.name}, "
-        f"rate {rate}, ROS_DOMAIN_ID={environment['ROS_DOMAIN_ID']} (logs: {launch_log})")
+        f"speed {speed}, ROS_DOMAIN_ID={environment['ROS_DOMAIN_ID']} (logs: {launch_log})")
     with open(launch_log, "w", encoding="utf-8") as output:
         runner = subprocess.Popen(command, stdout=output, stderr=subprocess.STDOUT, env=environment,
                                   start_new_session=True)
@@ -229,8 +229,8 @@ def add_arguments(parser):
                                                     "or one generated from its scenario)")
     parser.add_argument("--out", default="out/closed_loop", help="output directory (default out/closed_loop)")
     parser.add_argument("--params-file", default=None, help=f"ROS parameter file (default {DEFAULT_PARAMS})")
-    parser.add_argument("--rate", type=float, default=DEFAULT_RATE,
-                        help=f"replay speed factor (default {DEFAULT_RATE}, see the module help)")
+    parser.add_argument("--speed", type=float, default=DEFAULT_SPEED,
+                        help=f"replay speed factor (default {DEFAULT_SPEED}, see the module help)")
     parser.add_argument("--time-limit-s", type=float, default=240.0,
                         help="wall-time limit of the run, start-up included (default 240)")
     parser.add_argument("--no-review", action="store_true",
@@ -239,7 +239,7 @@ def add_arguments(parser):
 
 def run(args):
     try:
-        result = run_closed_loop(args.out, bag=args.bag, params_file=args.params_file, rate=args.rate,
+        result = run_closed_loop(args.out, bag=args.bag, params_file=args.params_file, speed=args.speed,
                                  time_limit_s=args.time_limit_s, review=not args.no_review)
     except (ValueError, BagError, OSError) as error:
         print(f"riskbound closedloop: error: {error}", file=sys.stderr)

@@ -26,10 +26,14 @@ _ARGUMENT = re.compile(r"^([A-Za-z_][\w-]*):=(.*)$", re.DOTALL)
 
 
 def add_arguments(parser):
+    parser.epilog = ("exit codes: 0 the launch ended as asked (Ctrl-C, SIGTERM, an on_exit=\"shutdown\" node "
+                     "finished); 1 a node failed or did not stop in time; 2 a wrong launch file, argument or "
+                     "option, or a missing executable (nothing started)")
     parser.add_argument("file", help="launch file: a path, or a name in the package's launch directory")
     parser.add_argument("arguments", nargs="*", metavar="name:=value", help="launch arguments")
-    parser.add_argument("--show-args", action="store_true", help="list the file's arguments and exit")
-    parser.add_argument("--print", action="store_true", dest="print_only",
+    parser.add_argument("--arguments", action="store_true", dest="list_arguments",
+                        help="list the file's launch arguments (default, description) and exit")
+    parser.add_argument("--dry-run", action="store_true",
                         help="print each node's command line and exit without starting anything")
     parser.add_argument("--log-dir", default=None,
                         help="directory for the nodes' logs (default: $ROS_LOG_DIR or ~/.ros/log, in a "
@@ -64,7 +68,7 @@ def run(args):
             return EXIT_USAGE
     try:
         path = resolve_launch_file(args.file)
-        if args.show_args:
+        if args.list_arguments:
             for argument in declared_arguments(path):
                 default = "(required)" if argument.default is None else f"(default: {argument.default!r})"
                 print(f"{argument.name} {default}\n    {argument.description}")
@@ -81,7 +85,7 @@ def run(args):
         print(f"riskbound launch: error: {path.name}: more than one node named {', '.join(duplicates)}",
               file=sys.stderr)
         return EXIT_USAGE
-    if args.print_only:
+    if args.dry_run:
         for spec in specs:
             print(f"{spec.label}: {' '.join(spec.command)}")
         return 0

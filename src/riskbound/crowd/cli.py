@@ -1,8 +1,9 @@
-"""`riskbound crowd`: write a synthetic crowd bag from a scenario file, or check an existing one.
+"""`riskbound crowd`: write a synthetic crowd bag from a scenario file (`riskbound bagcheck` reads
+one back: riskbound.crowd.bag_check).
 
-    riskbound crowd SCENARIO -o BAG [--storage mcap|sqlite3] [--seed N] [--duration-s T]
-                    [--rate-hz 10] [--noise-m 0.05] [--miss-prob 0.05] [--clutter-rate 0.2] [--frame odom]
-    riskbound crowd --info BAG
+    riskbound crowd SCENARIO --out BAG [--bag-format mcap|sqlite3] [--seed N] [--duration-s T]
+                    [--rate-hz 10] [--sim-time-hz 100] [--noise-m 0.05] [--miss-prob 0.05]
+                    [--clutter-rate 0.2] [--frame odom] [--overwrite]
 
 Errors (bad scenario, bad option, unreadable bag) print one line and exit with status 2.
 """
@@ -21,14 +22,17 @@ _BAG_FILE_SUFFIXES = (".mcap", ".db3", ".yaml", ".db3-shm", ".db3-wal")
 
 
 def add_arguments(parser):
-    parser.add_argument("scenario", nargs="?", help="scenario YAML file (see config/crowd_*.yaml)")
-    parser.add_argument("-o", "--output", metavar="BAG", help="bag directory to create")
-    parser.add_argument("--storage", choices=bag_io.STORAGE_FORMATS, default="mcap", help="bag storage (default mcap)")
+    parser.epilog = "exit codes: 0 written; 2 a bad scenario or option, or the bag could not be written"
+    parser.add_argument("scenario", help="scenario YAML file (see config/crowd_*.yaml)")
+    parser.add_argument("--out", metavar="BAG", required=True, help="bag directory to create")
+    parser.add_argument("--bag-format", choices=bag_io.STORAGE_FORMATS, default="mcap",
+                        help="rosbag2 storage format (default mcap)")
     parser.add_argument("--seed", type=int, default=0, help="random seed; the same seed gives the same bag (default 0)")
     parser.add_argument("--duration-s", type=float, default=None,
                         help="recorded seconds after the warm-up (default: the scenario's duration_s)")
     parser.add_argument("--rate-hz", type=float, default=10.0, help="frames per second of truth and detections (default 10)")
-    parser.add_argument("--clock-hz", type=float, default=100.0, help="/clock messages per second (default 100)")
+    parser.add_argument("--sim-time-hz", type=float, default=100.0,
+                        help="/clock messages per second of bag time (default 100)")
     parser.add_argument("--noise-m", type=float, default=0.05, help="detection position noise, sd per axis [m] (default 0.05)")
     parser.add_argument("--heading-noise-rad", type=float, default=0.1, help="detection heading noise, sd [rad] (default 0.1)")
     parser.add_argument("--miss-prob", type=float, default=0.05, help="probability a walker is not detected in a frame (default 0.05)")
@@ -36,15 +40,10 @@ def add_arguments(parser):
                         help="mean number of false detections per frame, Poisson (default 0.2)")
     parser.add_argument("--frame", default="odom", help="frame_id of the poses (default odom)")
     parser.add_argument("--overwrite", action="store_true", help="replace BAG if it is an existing bag directory")
-    parser.add_argument("--info", metavar="BAG", help="read BAG completely and print what it holds, instead of generating")
 
 
 def run(args):
     try:
-        if args.info:
-            return _info(Path(args.info))
-        if not args.scenario or not args.output:
-            raise ValueError("give a SCENARIO file and -o BAG (or --info BAG to inspect a bag)")
         return _generate(args)
     except (ValueError, bag_io.BagError, OSError) as error:
         _end_progress()
@@ -53,20 +52,20 @@ def run(args):
 
 
 def _generate(args):
-    output = Path(args.output)
+    output = Path(args.out)
     if output.exists():
         if not args.overwrite:
-            raise ValueError(f"-o {output}: already exists; choose another path or pass --overwrite")
+            raise ValueError(f"--out {output}: already exists; choose another path or pass --overwrite")
         _remove_bag_directory(output)
     detector = DetectorModel(noise_m=args.noise_m, miss_prob=args.miss_prob, clutter_rate=args.clutter_rate,
                              heading_noise_rad=args.heading_noise_rad)
     summary = generate_crowd_bag(args.scenario, output, seed=args.seed, duration_s=args.duration_s,
-                                 rate_hz=args.rate_hz, clock_hz=args.clock_hz, detector=detector,
-                                 frame_id=args.frame, storage=args.storage, progress=_progress)
+                                 rate_hz=args.rate_hz, sim_time_hz=args.sim_time_hz, detector=detector,
+                                 frame_id=args.frame, bag_format=args.bag_format, progress=_progress)
     _end_progress()
     simulated_s = summary.duration_s
     total_s = summary.simulate_s + summary.write_s
-    print(f"wrote {summary.bag_path} ({summary.storage}, {summary.size_bytes / 1e6:.2f} MB)")
+    print(f"wrote {summary.bag_path} ({summary.bag_format}, {summary.size_bytes / 1e6:.2f} MB)")
     print(f"  scenario {summary.scenario!r}, seed {summary.seed}: {summary.frames} frames over {simulated_s:.1f} s "
           f"at {args.rate_hz:g} Hz, frame {args.frame!r}")
     print(f"  walkers: {summary.spawned} appeared, {summary.exited} left, {summary.turned_away} turned away, "
@@ -80,27 +79,12 @@ def _generate(args):
     return 0
 
 
-def _info(path):
-    bag = bag_io.read_crowd_bag(path)
-    truth_counts = [len(ids) for ids in bag.truth_ids]
-    walkers = len(set().union(*[set(ids.tolist()) for ids in bag.truth_ids])) if bag.truth_ids else 0
-    span = (bag.truth.stamps_s[-1] - bag.truth.stamps_s[0]) if len(bag.truth) else 0.0
-    print(f"{path} ({bag.storage})")
-    for topic, count in sorted(bag.message_counts.items()):
-        print(f"  {topic}: {count} messages")
-    print(f"  {len(bag.truth)} truth frames over {span:.1f} s, {walkers} distinct walkers, "
-          f"{min(truth_counts, default=0)}-{max(truth_counts, default=0)} per frame")
-    for key, value in sorted(bag.metadata.items()):
-        print(f"  {key}: {value}")
-    return 0
-
-
 def _remove_bag_directory(path):
     contents = list(path.iterdir()) if path.is_dir() else []
     looks_like_bag = (path / "metadata.yaml").is_file() and all(
         p.is_file() and p.name.endswith(_BAG_FILE_SUFFIXES) for p in contents)
     if not looks_like_bag:
-        raise ValueError(f"-o {path}: exists and is not a bag directory; not removing it")
+        raise ValueError(f"--out {path}: exists and is not a bag directory; not removing it")
     shutil.rmtree(path)
 
 

@@ -21,7 +21,7 @@ class RecordingSummary:
     scenario: str
     seed: int
     bag_path: Path
-    storage: str
+    bag_format: str
     frames: int
     duration_s: float
     spawned: int
@@ -48,8 +48,8 @@ def seeded_generators(seed):
     return np.random.default_rng(crowd_seed), np.random.default_rng(detector_seed)
 
 
-def generate_crowd_bag(scenario_path, bag_path, seed=0, duration_s=None, rate_hz=10.0, clock_hz=100.0,
-                       detector=None, frame_id="odom", storage="mcap", progress=None):
+def generate_crowd_bag(scenario_path, bag_path, seed=0, duration_s=None, rate_hz=10.0, sim_time_hz=100.0,
+                       detector=None, frame_id="odom", bag_format="mcap", progress=None):
     """Simulate the scenario and write the bag. Returns a RecordingSummary.
 
     Raises ValueError for a bad scenario or argument and BagError when the bag cannot be written.
@@ -57,10 +57,10 @@ def generate_crowd_bag(scenario_path, bag_path, seed=0, duration_s=None, rate_hz
     """
     if not isinstance(frame_id, str) or not frame_id:
         raise ValueError(f"frame_id={frame_id!r}: must be a non-empty frame name")
-    if not (np.isfinite(clock_hz) and clock_hz > 0.0):
-        raise ValueError(f"clock_hz={clock_hz!r}: must be > 0")
-    if storage not in bag_io.STORAGE_FORMATS:
-        raise ValueError(f"storage={storage!r}: allowed values are {', '.join(bag_io.STORAGE_FORMATS)}")
+    if not (np.isfinite(sim_time_hz) and sim_time_hz > 0.0):
+        raise ValueError(f"sim_time_hz={sim_time_hz!r}: must be > 0")
+    if bag_format not in bag_io.STORAGE_FORMATS:
+        raise ValueError(f"bag_format={bag_format!r}: allowed values are {', '.join(bag_io.STORAGE_FORMATS)}")
     detector = DetectorModel() if detector is None else detector
     scenario = load_scenario(scenario_path)
     crowd_rng, rng = seeded_generators(seed)
@@ -72,7 +72,7 @@ def generate_crowd_bag(scenario_path, bag_path, seed=0, duration_s=None, rate_hz
 
     bounds = scenario.bounds()
     frame_ns = [bag_io.seconds_to_ns(frame.time_s) for frame in run.frames]
-    clock_step_ns = bag_io.seconds_to_ns(1.0 / clock_hz)
+    clock_step_ns = bag_io.seconds_to_ns(1.0 / sim_time_hz)
     clock_ns = list(range(frame_ns[0], frame_ns[-1] + 1, clock_step_ns))
     custom_data = {
         "generator": "riskbound crowd",
@@ -94,7 +94,7 @@ def generate_crowd_bag(scenario_path, bag_path, seed=0, duration_s=None, rate_hz
             custom_data[name] = repr([float(hint[0]), float(hint[1])])
 
     missed = clutter = detections = 0
-    with bag_io.BagWriter(bag_path, bag_io.CROWD_TOPICS, storage=storage, custom_data=custom_data) as writer:
+    with bag_io.BagWriter(bag_path, bag_io.CROWD_TOPICS, storage=bag_format, custom_data=custom_data) as writer:
         clock_index = 0
         for k, (frame, time_ns) in enumerate(zip(run.frames, frame_ns)):
             while clock_index < len(clock_ns) and clock_ns[clock_index] <= time_ns:
@@ -117,7 +117,7 @@ def generate_crowd_bag(scenario_path, bag_path, seed=0, duration_s=None, rate_hz
 
     present = [len(frame.ids) for frame in run.frames]
     return RecordingSummary(
-        scenario=scenario.name, seed=seed, bag_path=Path(bag_path), storage=storage, frames=len(run.frames),
+        scenario=scenario.name, seed=seed, bag_path=Path(bag_path), bag_format=bag_format, frames=len(run.frames),
         duration_s=run.frames[-1].time_s - run.frames[0].time_s, spawned=run.spawned, exited=run.exited,
         turned_away=run.turned_away, max_present=run.max_present, mean_present=float(np.mean(present)),
         contacts=run.contacts, min_gap_m=run.min_gap_m, min_boundary_gap_m=run.min_boundary_gap_m,

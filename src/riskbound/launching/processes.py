@@ -15,8 +15,9 @@ unsafe):
 - Exit code: 0 for a requested or on_exit="shutdown" end where every node stopped cleanly; 1 when
   a node failed or had to be killed; the message names the node and shows its last output lines.
 
-Node output goes to <log_dir>/<name>.log, and also to this process's stdout, each line prefixed
-with [name], for output="screen" or "both".
+Node output goes to <log_dir>/<name>.log, and also to this process's stdout for output="screen"
+or "both", each line after the node's name and a bar (`planner  │ …`); the runner's own lines
+carry RUNNER_LABEL. Names are padded to one width, so the bars line up.
 """
 
 import ctypes
@@ -31,6 +32,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 POLL_S = 0.05
+RUNNER_LABEL = "runner"
+BAR = "│"
 TAIL_LINES = 25
 _PR_SET_PDEATHSIG = 1
 
@@ -87,12 +90,16 @@ class Supervisor:
         self._write_lock = threading.RLock()
         self._stop_requests = 0
         self._failed = False
+        self._label_width = max([len(RUNNER_LABEL)] + [len(spec.label) for spec in self.specs])
 
     # --- output ----------------------------------------------------------------------------------
 
+    def line_prefix(self, label):
+        return f"{label:<{self._label_width}} {BAR} "
+
     def say(self, text):
         with self._write_lock:
-            self.out.write(f"[launch] {text}\n")
+            self.out.write(self.line_prefix(RUNNER_LABEL) + text + "\n")
             self.out.flush()
 
     def _pump(self, child):
@@ -106,7 +113,7 @@ class Supervisor:
                 log.flush()
                 if echo:
                     with self._write_lock:
-                        self.out.write(f"[{child.spec.label}] {line}\n")
+                        self.out.write(self.line_prefix(child.spec.label) + line + "\n")
                         self.out.flush()
 
     # --- signals ---------------------------------------------------------------------------------

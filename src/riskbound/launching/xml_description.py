@@ -223,7 +223,7 @@ def _truth(text, context):
 
 
 def declared_arguments(path):
-    """ArgumentInfo of each top-level <arg> of a launch file, defaults unevaluated (for --show-args)."""
+    """ArgumentInfo of each top-level <arg> of a launch file, defaults unevaluated (for `riskbound launch --arguments`)."""
     return [ArgumentInfo(e.get("name", ""), e.get("default"), e.get("description", ""))
             for e in LaunchDescription._root(Path(path)) if e.tag == "arg"]
 

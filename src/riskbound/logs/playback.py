@@ -1,19 +1,19 @@
 """Bag playback without ROS: which messages to play, in what order, and when (the replay node's core).
 
-A pass plays the window [start + start_offset_s, start + start_offset_s + duration_s] of the bag
-(duration_s = 0: to the end) in log-time order. Wall time and bag time are tied by the rate factor:
+A pass plays the window [start + skip_first_s, start + skip_first_s + window_s] of the bag
+(window_s = 0: to the end) in log-time order. Wall time and bag time are tied by the speed factor:
 
-    bag_time(wall) = window_start + rate · (wall − pass_start_wall)
-    due_wall(t)    = pass_start_wall + (t − window_start) / rate
+    bag_time(wall) = window_start + speed · (wall − pass_start_wall)
+    due_wall(t)    = pass_start_wall + (t − window_start) / speed
 
-so rate 2 plays twice as fast and rate 0.5 at half speed. With `loop` the next pass starts when
-the previous one ends, from the window start again: the bag's time jumps back, as it does with
-the standard player. Messages stay serialised (CDR bytes as stored); the node publishes them as
-they are, so no message is decoded or re-encoded on the way.
+so speed 2 plays twice as fast and speed 0.5 at half speed. With `repeat` the next pass starts
+when the previous one ends, from the window start again, so the bag's time jumps back (nodes
+under use_sim_time see time run backwards and must cope). Messages stay serialised (CDR bytes as
+stored); the node publishes them as they are, so no message is decoded or re-encoded on the way.
 
-When `publish_clock` is set, the player publishes /clock itself (clock_hz ticks of bag_time, one
-at the start of each pass) and does not replay a /clock topic stored in the bag, whose ticks
-would fight its own after a rate change or a loop.
+When `drive_sim_time` is set, the replay publishes /clock itself (sim_time_hz ticks of bag_time
+per wall second, one at the start of each pass) and does not replay a /clock topic stored in the
+bag, whose ticks would fight its own after a speed change or a repeat.
 """
 
 from dataclasses import dataclass, field, fields, replace
@@ -23,28 +23,28 @@ from riskbound.settings_table import SettingSpec
 
 REPLAY_SPECS = (
     SettingSpec("bag", "", "rosbag2 bag to play: a bag directory or its .mcap/.db3 file", read_only=True),
-    SettingSpec("rate", 1.0, "playback speed as a multiple of recorded time", 0.0, 100.0, low_open=True,
+    SettingSpec("speed", 1.0, "playback speed as a multiple of recorded time", 0.0, 100.0, low_open=True,
                 read_only=True),
-    SettingSpec("start_offset_s", 0.0, "skip this much of the bag's beginning [s]", 0.0, 1e6, read_only=True),
-    SettingSpec("duration_s", 0.0, "play this much of the bag after the offset; 0: to the end [s]", 0.0, 1e6,
-                read_only=True),
-    SettingSpec("loop", False, "start again from the offset when the window has been played", read_only=True),
-    SettingSpec("publish_clock", True, "publish /clock from the playback time (for use_sim_time); a /clock "
+    SettingSpec("skip_first_s", 0.0, "skip this much of the bag's beginning [s]", 0.0, 1e6, read_only=True),
+    SettingSpec("window_s", 0.0, "play this much of the bag after the skipped part; 0: to the end [s]",
+                0.0, 1e6, read_only=True),
+    SettingSpec("repeat", False, "play the window again, from its start, each time it ends", read_only=True),
+    SettingSpec("drive_sim_time", True, "publish /clock from the playback time (for use_sim_time); a /clock "
                 "topic stored in the bag is then not replayed", read_only=True),
-    SettingSpec("clock_hz", 100.0, "/clock messages per second of wall time", 1.0, 1000.0, read_only=True),
-    SettingSpec("wait_timeout_s", 60.0, "wait at most this long for wait_for_publishers and "
-                "wait_for_subscribers before playing anyway [s]", 0.0, 3600.0, read_only=True),
-    SettingSpec("start_delay_s", 0.0, "wall-time pause after the wait, before the first message [s]",
+    SettingSpec("sim_time_hz", 100.0, "/clock messages per second of wall time", 1.0, 1000.0, read_only=True),
+    SettingSpec("await_timeout_s", 60.0, "wait at most this long for await_senders and "
+                "await_listeners before playing anyway [s]", 0.0, 3600.0, read_only=True),
+    SettingSpec("pause_before_s", 0.0, "wall-time pause after the wait, before the first message [s]",
                 0.0, 3600.0, read_only=True),
-    SettingSpec("exit_at_end", True, "end the node (exit code 0) when the window has been played and loop "
+    SettingSpec("exit_at_end", True, "end the node (exit code 0) when the window has been played and repeat "
                 "is false", read_only=True),
 )
 LIST_SPECS = {
-    "topics": "topics to play (absolute names as stored); empty: every topic in the bag",
-    "wait_for_publishers": "play only once each of these topics has a publisher (nodes that must be up "
-                           "first: their publishers appear when they are ready), or after wait_timeout_s",
-    "wait_for_subscribers": "play only once each of these topics has a subscriber (a recorder that must not "
-                            "miss the start), or after wait_timeout_s",
+    "only_topics": "topics to play (absolute names as stored); empty: every topic in the bag",
+    "await_senders": "play only once each of these topics has a publisher (nodes that must be up "
+                     "first: their publishers appear when they are ready), or after await_timeout_s",
+    "await_listeners": "play only once each of these topics has a subscriber (a recorder that must not "
+                       "miss the start), or after await_timeout_s",
 }
 SPECS_BY_NAME = {spec.name: spec for spec in REPLAY_SPECS}
 
@@ -54,18 +54,18 @@ class ReplaySettings:
     """Validated replay settings (SI units)."""
 
     bag: str = ""
-    rate: float = 1.0
-    start_offset_s: float = 0.0
-    duration_s: float = 0.0
-    loop: bool = False
-    publish_clock: bool = True
-    clock_hz: float = 100.0
-    wait_timeout_s: float = 60.0
-    start_delay_s: float = 0.0
+    speed: float = 1.0
+    skip_first_s: float = 0.0
+    window_s: float = 0.0
+    repeat: bool = False
+    drive_sim_time: bool = True
+    sim_time_hz: float = 100.0
+    await_timeout_s: float = 60.0
+    pause_before_s: float = 0.0
     exit_at_end: bool = True
-    topics: tuple = field(default=())
-    wait_for_publishers: tuple = field(default=())
-    wait_for_subscribers: tuple = field(default=())
+    only_topics: tuple = field(default=())
+    await_senders: tuple = field(default=())
+    await_listeners: tuple = field(default=())
 
     def __post_init__(self):
         for item in fields(self):
@@ -117,23 +117,23 @@ class BagPlayback:
                                    f"{previous.msgtype} and {connection.msgtype}")
                 available[connection.topic] = TopicInfo(connection.topic, connection.msgtype,
                                                         offered[0] if offered else None, count)
-        missing = [t for t in settings.topics if t not in available]
+        missing = [t for t in settings.only_topics if t not in available]
         if missing:
-            raise ValueError(f"topics={list(settings.topics)!r}: {', '.join(missing)} not in {settings.bag} "
+            raise ValueError(f"only_topics={list(settings.only_topics)!r}: {', '.join(missing)} not in {settings.bag} "
                              f"(it has {', '.join(sorted(available)) or 'no topics'})")
-        chosen = settings.topics or tuple(sorted(available))
-        if settings.publish_clock:
+        chosen = settings.only_topics or tuple(sorted(available))
+        if settings.drive_sim_time:
             chosen = tuple(t for t in chosen if t != TOPIC_CLOCK)
         self.topics = {name: available[name] for name in chosen}
-        self.window_start_ns = self.bag_start_ns + _ns(settings.start_offset_s)
+        self.window_start_ns = self.bag_start_ns + _ns(settings.skip_first_s)
         if self.window_start_ns > self.bag_end_ns:
-            raise ValueError(f"start_offset_s={settings.start_offset_s!r} is out of range: the bag lasts "
+            raise ValueError(f"skip_first_s={settings.skip_first_s!r} is out of range: the bag lasts "
                              f"{(self.bag_end_ns - self.bag_start_ns) * 1e-9:.3f} s")
-        self.window_end_ns = self.bag_end_ns if settings.duration_s == 0.0 else min(
-            self.bag_end_ns, self.window_start_ns + _ns(settings.duration_s))
+        self.window_end_ns = self.bag_end_ns if settings.window_s == 0.0 else min(
+            self.bag_end_ns, self.window_start_ns + _ns(settings.window_s))
 
     @property
-    def window_s(self):
+    def pass_length_s(self):
         """Length of one pass in bag time [s]."""
         return (self.window_end_ns - self.window_start_ns) * 1e-9
 
@@ -151,26 +151,26 @@ class BagPlayback:
 class PassTimeline:
     """Wall time ↔ bag time for one pass that started at wall time `start_wall_s` (monotonic seconds)."""
 
-    def __init__(self, window_start_ns, rate, start_wall_s):
+    def __init__(self, window_start_ns, speed, start_wall_s):
         self.window_start_ns = window_start_ns
-        self.rate = rate
+        self.speed = speed
         self.start_wall_s = start_wall_s
 
     def due_wall_s(self, time_ns):
         """Wall time at which the message logged at time_ns is due."""
-        return self.start_wall_s + (time_ns - self.window_start_ns) * 1e-9 / self.rate
+        return self.start_wall_s + (time_ns - self.window_start_ns) * 1e-9 / self.speed
 
     def bag_time_ns(self, wall_s):
         """Bag time at wall time wall_s (never before the window start)."""
-        return self.window_start_ns + max(0, _ns(self.rate * (wall_s - self.start_wall_s)))
+        return self.window_start_ns + max(0, _ns(self.speed * (wall_s - self.start_wall_s)))
 
 
 class ClockTicks:
-    """Wall times of /clock ticks every 1/clock_hz; a tick missed by more than one period (an
+    """Wall times of /clock ticks every 1/sim_time_hz; a tick missed by more than one period (an
     overloaded machine) is dropped rather than sent in a burst."""
 
-    def __init__(self, clock_hz, start_wall_s):
-        self.period_s = 1.0 / clock_hz
+    def __init__(self, sim_time_hz, start_wall_s):
+        self.period_s = 1.0 / sim_time_hz
         self.next_s = start_wall_s
 
     def advance(self, now_s):

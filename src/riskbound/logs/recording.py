@@ -27,26 +27,26 @@ _ROSBAG2_VERSION = 9
 
 
 def default_bag_name(now=None):
-    """`riskbound_YYYYmmdd_HHMMSS`, the name used when no output path is given."""
+    """`riskbound_YYYYmmdd_HHMMSS`, the name used when no bag directory is given."""
     return time.strftime("riskbound_%Y%m%d_%H%M%S", time.localtime(now))
 
 
 class RawBagRecorder:
-    """A new bag at `path` (must not exist; parent directories are created)."""
+    """A new bag at `path` (must not exist; parent directories are created) in `bag_format`."""
 
-    def __init__(self, path, storage="mcap", custom_data=None):
-        if storage not in _STORAGE_PLUGINS:
-            raise ValueError(f"storage={storage!r} is not allowed: must be one of {', '.join(STORAGE_FORMATS)}")
+    def __init__(self, path, bag_format="mcap", custom_data=None):
+        if bag_format not in _STORAGE_PLUGINS:
+            raise ValueError(f"bag_format={bag_format!r} is not allowed: must be one of {', '.join(STORAGE_FORMATS)}")
         self.path = Path(path)
         if self.path.exists():
-            raise ValueError(f"output={str(self.path)!r} already exists: choose a new path")
-        self.storage = storage
+            raise ValueError(f"bag_dir={str(self.path)!r} already exists: choose a new path")
+        self.bag_format = bag_format
         self.counts = {}
         self.types = {}
         self._connections = {}
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
-            self._writer = Writer(self.path, version=_ROSBAG2_VERSION, storage_plugin=_STORAGE_PLUGINS[storage])
+            self._writer = Writer(self.path, version=_ROSBAG2_VERSION, storage_plugin=_STORAGE_PLUGINS[bag_format])
             for key, value in (custom_data or {}).items():
                 self._writer.set_custom_data(str(key), str(value))
             self._writer.open()

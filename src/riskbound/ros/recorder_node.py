@@ -12,9 +12,9 @@ The offered QoS of the first publisher is stored, so a replay republishes a latc
 The bag is finished (storage index and metadata.yaml written) on every way out: Ctrl-C, SIGTERM,
 or an error; a bag cut off by SIGKILL is not readable.
 
-Parameters: output, storage, topics, discovery_period_s, queue_depth (read-only: restart to change).
+Parameters: bag_dir, bag_format, only_topics, discovery_period_s, queue_depth (read-only: restart to change).
 
-Run: python -m riskbound.ros.recorder_node --ros-args -p output:=out/run1 -p "topics:=[/odom, /cmd_vel]"
+Run: python -m riskbound.ros.recorder_node --ros-args -p bag_dir:=out/run1 -p "only_topics:=[/odom, /cmd_vel]"
 """
 
 import sys
@@ -35,12 +35,12 @@ from riskbound.settings_table import SettingSpec
 
 NODE_NAME = "recorder"
 WARN_THROTTLE_S = 5.0
-# Recorded when `topics` is empty: everything except the graph's own housekeeping.
+# Recorded when `only_topics` is empty: everything except the graph's own housekeeping.
 NOT_RECORDED_BY_DEFAULT = ("/rosout", "/parameter_events")
 RECORDER_SPECS = (
-    SettingSpec("output", "", "bag directory to create (must not exist); ending in '/' or empty: a new "
+    SettingSpec("bag_dir", "", "bag directory to create (must not exist); ending in '/' or empty: a new "
                 "riskbound_<date>_<time> inside that directory (or the working directory)", read_only=True),
-    SettingSpec("storage", "mcap", "storage format of the bag", choices=STORAGE_FORMATS, read_only=True),
+    SettingSpec("bag_format", "mcap", "storage format of the bag", choices=STORAGE_FORMATS, read_only=True),
     SettingSpec("discovery_period_s", 0.5, "how often the graph is searched for the chosen topics [s]",
                 0.05, 60.0, read_only=True),
     SettingSpec("queue_depth", 100, "messages each subscription buffers while the node is busy",
@@ -53,23 +53,23 @@ class RecorderNode(Node):
         super().__init__(NODE_NAME, **kwargs)
         values = declare_settings(self, RECORDER_SPECS)
         requested = declare_string_list(
-            self, "topics", "topics to record (absolute or relative to the node's namespace); empty: every topic "
+            self, "only_topics", "topics to record (absolute or relative to the node's namespace); empty: every topic "
                             f"except {', '.join(NOT_RECORDED_BY_DEFAULT)}")
         if any(not topic for topic in requested):
-            raise ValueError(f"topics={list(requested)!r} is not allowed: topic names must not be empty")
+            raise ValueError(f"only_topics={list(requested)!r} is not allowed: topic names must not be empty")
         self._wanted = {self.resolve_topic_name(topic) for topic in requested}
         self._depth = values["queue_depth"]
-        output = values["output"]
-        if not output or output.endswith("/"):
-            output += default_bag_name()
-        self.recorder = RawBagRecorder(output, storage=values["storage"])
+        bag_dir = values["bag_dir"]
+        if not bag_dir or bag_dir.endswith("/"):
+            bag_dir += default_bag_name()
+        self.recorder = RawBagRecorder(bag_dir, bag_format=values["bag_format"])
         self._refused = set()
         self._warn = ThrottledWarnings(self.get_logger(), WARN_THROTTLE_S).warn
         # Discovery runs on the steady clock: under use_sim_time a ROS-time timer would wait for a
         # /clock that may only start once this node records (a replay waiting for its subscriber).
         self.create_timer(values["discovery_period_s"], self._discover, clock=Clock(clock_type=ClockType.STEADY_TIME))
         self.get_logger().info(f"recording {', '.join(sorted(self._wanted)) if self._wanted else 'all topics'} "
-                               f"to {self.recorder.path} ({values['storage']})")
+                               f"to {self.recorder.path} ({values['bag_format']})")
         self._discover()
 
     def _discover(self):

@@ -1,20 +1,20 @@
 """Replay node: publishes a rosbag2 bag's topics on time, and /clock for use_sim_time.
 
-Timing, window, loop and clock rules are riskbound.logs.playback's (see there). Each topic is
+Timing, window, repeat and clock rules are riskbound.logs.playback's (see there). Each topic is
 published with the type named in the bag (resolved to the installed message class,
 riskbound.ros.message_types) and the QoS the recorder stored for it; the stored CDR bytes go out
 as they are through rclpy's serialised publish, so a message leaves exactly as it was recorded,
 header stamps included. Topic names are the bag's (absolute); remap them with `-r /a:=/b`.
 
 Playback runs on its own thread, so the node keeps answering parameter requests while it waits
-for the next message. It starts once every topic in wait_for_publishers has a publisher and every
-topic in wait_for_subscribers a subscriber (or wait_timeout_s has passed), plus start_delay_s;
+for the next message. It starts once every topic in await_senders has a publisher and every
+topic in await_listeners a subscriber (or await_timeout_s has passed), plus pause_before_s;
 with exit_at_end it ends the process (code 0) after the window has been played, which a launch
 file can use to end a whole run (on_exit="shutdown").
 
 Parameters: riskbound.logs.playback.REPLAY_SPECS and LIST_SPECS (all read-only: restart to change).
 
-Run: python -m riskbound.ros.replay_node --ros-args -p bag:=test/data/crowd_courtyard_40 -p rate:=1.0
+Run: python -m riskbound.ros.replay_node --ros-args -p bag:=test/data/crowd_courtyard_40 -p speed:=1.0
 """
 
 import sys
@@ -39,7 +39,7 @@ from riskbound.ros.string_list_parameter import declare_string_list
 NODE_NAME = "replay"
 WAIT_POLL_S = 0.1
 CLOCK_LEAD_S = 0.05
-# The standard player's clock profile: a late tick is useless, so best effort, newest only.
+# A late clock tick is useless, so best effort, newest only.
 CLOCK_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.BEST_EFFORT)
 
 
@@ -64,16 +64,16 @@ class ReplayNode(Node):
                                                                      qos_from_bag(topic.qos))
             except ValueError as error:
                 self.get_logger().warning(f"{topic.name} ({topic.count} messages) is not replayed: {error}")
-        self._clock_pub = self.create_publisher(Clock, TOPIC_CLOCK, CLOCK_QOS) if self.settings.publish_clock else None
+        self._clock_pub = self.create_publisher(Clock, TOPIC_CLOCK, CLOCK_QOS) if self.settings.drive_sim_time else None
         self._stop = threading.Event()
         self.finished = threading.Event()
         self.failure = None
         self.messages_published = 0
         s, p = self.settings, self.playback
         self.get_logger().info(
-            f"replaying {s.bag}: {len(self._topic_publishers)} topics, {p.window_s:.1f} s from "
-            f"+{s.start_offset_s} s at rate {s.rate}{', looping' if s.loop else ''}"
-            f"{', publishing /clock at %g Hz' % s.clock_hz if s.publish_clock else ''}")
+            f"replaying {s.bag}: {len(self._topic_publishers)} topics, {p.pass_length_s:.1f} s from "
+            f"+{s.skip_first_s} s at speed {s.speed}{', repeating' if s.repeat else ''}"
+            f"{', publishing /clock at %g Hz' % s.sim_time_hz if s.drive_sim_time else ''}")
         self._thread = threading.Thread(target=self._run, name="replay", daemon=True)
         self._thread.start()
 
@@ -86,13 +86,13 @@ class ReplayNode(Node):
     def _run(self):
         try:
             self._wait_for_graph()
-            if self._stop.wait(self.settings.start_delay_s):
+            if self._stop.wait(self.settings.pause_before_s):
                 return
             while not self._stop.is_set():
                 self._play_pass()
-                if not self.settings.loop or self._stop.is_set():
+                if not self.settings.repeat or self._stop.is_set():
                     break
-                self.get_logger().info("end of the window: starting again from the beginning (loop)")
+                self.get_logger().info("end of the window: starting again from its start (repeat)")
             if not self._stop.is_set():
                 self.get_logger().info(f"done: {self.messages_published} messages published")
         except BagError as error:
@@ -104,11 +104,11 @@ class ReplayNode(Node):
             self.finished.set()
 
     def _wait_for_graph(self):
-        """Until every topic of wait_for_publishers has a publisher and every topic of
-        wait_for_subscribers a subscriber, or wait_timeout_s."""
+        """Until every topic of await_senders has a publisher and every topic of
+        await_listeners a subscriber, or await_timeout_s."""
         s = self.settings
-        wanted = [(t, "publisher", self.count_publishers) for t in s.wait_for_publishers] + [
-            (t, "subscriber", self.count_subscribers) for t in s.wait_for_subscribers]
+        wanted = [(t, "publisher", self.count_publishers) for t in s.await_senders] + [
+            (t, "subscriber", self.count_subscribers) for t in s.await_listeners]
         if not wanted:
             return
         started = time.monotonic()
@@ -118,8 +118,8 @@ class ReplayNode(Node):
             if not missing:
                 self.get_logger().info(f"graph ready after {time.monotonic() - started:.1f} s: starting playback")
                 return
-            if time.monotonic() - started >= s.wait_timeout_s:
-                self.get_logger().warning(f"no {', '.join(missing)} after wait_timeout_s={s.wait_timeout_s}: "
+            if time.monotonic() - started >= s.await_timeout_s:
+                self.get_logger().warning(f"no {', '.join(missing)} after await_timeout_s={s.await_timeout_s}: "
                                           "starting playback anyway")
                 return
             self._stop.wait(WAIT_POLL_S)
@@ -130,8 +130,8 @@ class ReplayNode(Node):
         self._publish_clock(self.playback.window_start_ns)
         if self._clock_pub is not None and self._stop.wait(CLOCK_LEAD_S):
             return
-        timeline = PassTimeline(self.playback.window_start_ns, self.settings.rate, time.monotonic())
-        ticks = ClockTicks(self.settings.clock_hz, timeline.start_wall_s)
+        timeline = PassTimeline(self.playback.window_start_ns, self.settings.speed, time.monotonic())
+        ticks = ClockTicks(self.settings.sim_time_hz, timeline.start_wall_s)
         for time_ns, topic, data in self.playback.messages():
             if not self._wait_until(timeline.due_wall_s(time_ns), timeline, ticks):
                 return

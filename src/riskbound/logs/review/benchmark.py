@@ -1,7 +1,7 @@
 """Time `riskbound review` on a long synthetic bag (default: 10 minutes, 40 walkers, 10 Hz).
 
     python -m riskbound.logs.review.benchmark [--minutes 10] [--walkers 40] [--rate-hz 10]
-                                              [--odom-rate-hz 50] [--storage mcap] [--keep DIR]
+                                              [--odom-rate-hz 50] [--bag-format mcap] [--keep DIR]
                                               [--without-truth]
 
 Writes a bag with every topic a recorded run has (riskbound.logs.review.synthetic): walkers
@@ -66,7 +66,7 @@ def main(argv=None):
     parser.add_argument("--walkers", type=int, default=40)
     parser.add_argument("--rate-hz", type=float, default=10.0)
     parser.add_argument("--odom-rate-hz", type=float, default=50.0)
-    parser.add_argument("--storage", choices=("mcap", "sqlite3"), default="mcap")
+    parser.add_argument("--bag-format", choices=("mcap", "sqlite3"), default="mcap")
     parser.add_argument("--keep", metavar="DIR", help="write the bag and report here instead of a temporary directory")
     parser.add_argument("--without-truth", action="store_true", help="no crowd_truth topics in the bag")
     args = parser.parse_args(argv)
@@ -78,7 +78,7 @@ def main(argv=None):
         run = crowd_run(args.minutes, args.walkers, args.rate_hz, args.odom_rate_hz)
         progress = cli.Progress()
         topics = [t for t in synthetic.ALL_TOPICS if not (args.without_truth and t.startswith("crowd_truth"))]
-        synthetic.write_review_bag(bag, run, topics=topics, storage=args.storage, progress=progress)
+        synthetic.write_review_bag(bag, run, topics=topics, storage=args.bag_format, progress=progress)
         progress.end()
         written = time.perf_counter()
         review_parser = argparse.ArgumentParser()
@@ -88,7 +88,7 @@ def main(argv=None):
         progress.end()
         size_mb = sum(p.stat().st_size for p in bag.rglob("*") if p.is_file()) / 1e6
         print(f"bag: {args.minutes:g} min, {args.walkers} walkers at {args.rate_hz:g} Hz "
-              f"({len(run.walker_ids)} walker ids), odom {args.odom_rate_hz:g} Hz, {size_mb:.0f} MB {args.storage}; "
+              f"({len(run.walker_ids)} walker ids), odom {args.odom_rate_hz:g} Hz, {size_mb:.0f} MB {args.bag_format}; "
               f"written in {written - started:.1f} s")
         print(f"review: {elapsed:.1f} s wall ({len(events)} events, {sum(e.figure is not None for e in events)} "
               f"figures, {len(data.obstacles)} obstacle observations from {data.obstacles.source})")
