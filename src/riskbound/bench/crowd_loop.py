@@ -17,6 +17,12 @@ robot_radius_m) overlapping a walker's disc (the scenario's walker_radius_m), th
 `riskbound closedloop`. Parameters come from the planner, tracker and sim_robot sections of a ROS
 parameter file (default config/drone_closed_loop.yaml); --set and --tracker-set override them.
 
+The same engine runs one cell of `riskbound sweep` (`run_cell`): there the walkers may react to
+the robot (`reaction_strength_m2_s2` > 0, riskbound.crowd.social_force.RobotPresence; the crowd is
+then simulated frame by frame around the robot where it stands at the start of each frame
+interval, instead of replayed), a crossing may be capped at a number of cycles, and the outcome is
+one flat record (`CellOutcome`).
+
 What it leaves out: message latency. The ROS graph hands the planner a forecast up to one control
 period old; here it is always fresh, so the closed loop through `riskbound closedloop` is the
 judge, and this command is for comparing settings quickly (about 10 s per crossing).
@@ -26,9 +32,10 @@ Prints one line per crossing and a summary, writes DIR/crowdloop.json and DIR/cr
 """
 
 import json
+import math
 import sys
 import time
-from dataclasses import fields
+from dataclasses import dataclass, fields
 from pathlib import Path
 
 import numpy as np
@@ -43,6 +50,16 @@ ROBOT_SUBSTEPS = 5     # simulated-robot steps per control period (50 Hz, as the
 TRACKING_LEAD_S = 1.0  # tracking before the robot leaves, so that the walkers around it are confirmed
 GOAL_TOLERANCE_M = 0.3
 EXIT_USAGE = 2
+# A near miss: a walker's disc within this gap of the robot's, the threshold `riskbound review` flags
+# by default (its --clearance-m); one near miss per walker per approach, approaches of one walker
+# closer together than NEAR_MISS_MERGE_S counted once (the review's merge gap).
+NEAR_MISS_CLEARANCE_M = 0.5
+NEAR_MISS_MERGE_S = 0.5
+# The robot stands (for the longest stop) below this speed: our choice, no source; the simulated
+# robot braking at 6 m/s² passes it within one 50 Hz substep of reaching zero.
+STANDING_SPEED_MPS = 0.05
+# Statuses whose plan the robot follows; every other status is a failed cycle (no command, brake).
+_PLAN_FOLLOWED = ("solved", "feasible_not_converged", "least_violation")
 
 
 def add_arguments(parser):
@@ -109,16 +126,88 @@ def crowd_frames(scenario_path, seed, duration_s):
     return scenario, run.frames, detections
 
 
-def crossing(planner, tracker_settings, max_accel, scenario, frames, detections, start_s, mpc):
-    """One crossing from start_s into the recording. Returns a dict of figures and the clearance series."""
+class ReplayedCrowd:
+    """A crowd simulated beforehand (walkers who ignore the robot): frames and detections by index."""
+
+    def __init__(self, frames, detections):
+        self.frames, self.detections = frames, detections
+
+    @property
+    def frame_count(self):
+        return len(self.frames)
+
+    def frame(self, k, robot=None):
+        """(frame, (detected positions, headings)) number k; `robot` is not seen by these walkers."""
+        return self.frames[k], self.detections[k]
+
+
+class ReactingCrowd:
+    """A crowd simulated frame by frame around the robot (riskbound.crowd.simulate.CrowdSimulation),
+    seen by the synthetic detector as `crowd_frames` does, from the same two seeded streams."""
+
+    def __init__(self, scenario, seed, duration_s, strength_m2_s2, robot_radius_m):
+        from riskbound.crowd.record import seeded_generators
+        from riskbound.crowd.sensor import DetectorModel
+        from riskbound.crowd.simulate import CrowdSimulation
+
+        crowd_rng, self._rng = seeded_generators(seed)
+        self._simulation = CrowdSimulation(scenario, crowd_rng, duration_s=duration_s, rate_hz=FRAME_RATE_HZ)
+        self._detector, self._bounds = DetectorModel(), scenario.bounds()
+        self.strength_m2_s2, self.robot_radius_m = float(strength_m2_s2), float(robot_radius_m)
+        self.frame_count = int(round(duration_s * FRAME_RATE_HZ)) + 1
+        self.frames, self.detections = [], []
+        self._keep(self._simulation.first_frame())
+
+    def _keep(self, frame):
+        self.frames.append(frame)
+        self.detections.append(self._detector.detect(frame.positions, frame.headings, self._bounds, self._rng)[0:2])
+
+    def frame(self, k, robot=None):
+        """Frame k, simulating the intervals still missing with `robot` (position, velocity) held."""
+        from riskbound.crowd.social_force import RobotPresence
+
+        presence = None if robot is None else RobotPresence(robot[0], robot[1], self.robot_radius_m,
+                                                            self.strength_m2_s2)
+        while len(self.frames) <= k:
+            self._keep(self._simulation.next_frame(presence))
+        return self.frames[k], self.detections[k]
+
+
+def _world_velocity(robot):
+    """The simulated robot's velocity in the world frame (2,) [m/s]."""
+    if robot.model.name == "unicycle":
+        return robot.state[3] * np.array([math.cos(robot.state[2]), math.sin(robot.state[2])])
+    return robot.state[2:4].copy()
+
+
+def _onsets(below, ids, times_s, merge_s):
+    """Approaches: per walker, runs of `below` frames, runs closer than merge_s apart counted once."""
+    last_seen, count = {}, 0
+    for flags, frame_ids, time_s in zip(below, ids, times_s):
+        for walker in frame_ids[flags]:
+            walker = int(walker)
+            if walker not in last_seen or time_s - last_seen[walker] > merge_s + 0.5 / FRAME_RATE_HZ:
+                count += 1
+            last_seen[walker] = time_s
+    return count
+
+
+def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc, max_cycles=None):
+    """One crossing from start_s into the recording of `crowd` (ReplayedCrowd or ReactingCrowd),
+    at most `max_cycles` planning cycles (None: until the recording ends). Returns a dict of
+    figures and the clearance series (times, clearance)."""
+    from riskbound.crowd.social_force import Geometry, boundary_clearance
     from riskbound.motion.forecast import ObstacleForecast
     from riskbound.motion.simulated_robot import SimRobotSettings, SimulatedRobot
     from riskbound.tracking.tracker import MultiTargetTracker
 
     start, goal = np.asarray(scenario.robot_start, float), np.asarray(scenario.robot_goal, float)
+    heading = math.atan2(goal[1] - start[1], goal[0] - start[0])
     robot = SimulatedRobot(SimRobotSettings(robot_model=planner.robot_model, initial_x=float(start[0]),
-                                            initial_y=float(start[1]), max_accel_mps2=max_accel))
+                                            initial_y=float(start[1]), initial_yaw=heading,
+                                            max_accel_mps2=max_accel))
     tracker = MultiTargetTracker(tracker_settings)
+    geometry = Geometry.build(scenario.walls, scenario.obstacle_centres, scenario.obstacle_radii)
     mpc.reset()
     grid = planner.step_s * np.arange(1, planner.horizon_steps + 1)
     period = 1.0 / FRAME_RATE_HZ
@@ -127,42 +216,134 @@ def crossing(planner, tracker_settings, max_accel, scenario, frames, detections,
     P0 = np.diag([0.02**2, 0.02**2, 0.02**2, 0.02**2])
     first = int(round((start_s - TRACKING_LEAD_S) * FRAME_RATE_HZ))
     leave = int(round(start_s * FRAME_RATE_HZ))
-    if first < 0 or leave >= len(frames):
-        raise ValueError(f"--start-s {start_s}: must be in [{TRACKING_LEAD_S}, {(len(frames) - 1) / FRAME_RATE_HZ}] "
+    if first < 0 or leave >= crowd.frame_count:
+        raise ValueError(f"--start-s {start_s}: must be in [{TRACKING_LEAD_S}, {(crowd.frame_count - 1) / FRAME_RATE_HZ}] "
                          f"s (one second of tracking comes first)")
-    times, clearance, solve_ms, statuses = [], [], [], {}
+    if max_cycles is not None and max_cycles < 1:
+        raise ValueError(f"max_cycles={max_cycles!r}: must be >= 1 or None")
+    times, clearance, static_gap, solve_ms, statuses = [], [], [], [], {}
+    contact_flags, near_flags, frame_ids, speeds = [], [], [], []
     reached_s = None
-    for k in range(first, len(frames)):
-        frame = frames[k]
-        positions, headings = detections[k]
+    for k in range(first, crowd.frame_count):
+        frame, (positions, headings) = crowd.frame(k, (robot.state[0:2].copy(), _world_velocity(robot)))
         tracker.process(frame.time_s, positions, headings)
         if k < leave:
             continue
         x0 = robot.state.copy()
         gaps = np.linalg.norm(frame.positions - x0[0:2], axis=1) - planner.robot_radius_m - scenario.walker_radius_m
-        times.append(frame.time_s - frames[leave].time_s)
+        times.append(frame.time_s - crowd.frames[leave].time_s)
         clearance.append(float(gaps.min()) if len(gaps) else float("inf"))
+        static_gap.append(float(boundary_clearance(x0[None, 0:2], np.array([planner.robot_radius_m]), geometry)[0]))
+        contact_flags.append(gaps < 0.0)
+        near_flags.append(gaps < NEAR_MISS_CLEARANCE_M)
+        frame_ids.append(frame.ids)
+        speeds.append(float(np.linalg.norm(_world_velocity(robot))))
         if np.linalg.norm(goal - x0[0:2]) <= GOAL_TOLERANCE_M:
             reached_s = times[-1]
+            break
+        if max_cycles is not None and len(solve_ms) >= max_cycles:
             break
         forecast = tracker.forecast().resampled(grid)
         forecast = ObstacleForecast(forecast.track_ids, grid, forecast.positions, forecast.headings,
                                     forecast.covariances, forecast.half_extents)
         result = mpc.solve(x0, P0, goal, forecast, elapsed_s=period)
-        solve_ms.append(result.solve_ms)
-        statuses[result.status] = statuses.get(result.status, 0) + 1
-        command = mpc.model.command(result.states, result.inputs, robot.yaw) if result.success else None
+        solve_ms.append(float(getattr(result, "solve_ms", float("nan"))))
+        status = str(getattr(result, "status", "unknown"))
+        statuses[status] = statuses.get(status, 0) + 1
+        followed = bool(getattr(result, "success", False))
+        command = mpc.model.command(result.states, result.inputs, robot.yaw) if followed else None
         for _ in range(ROBOT_SUBSTEPS):
             robot.step(command, period / ROBOT_SUBSTEPS)
     clearance_arr = np.asarray(clearance)
+    static_arr = np.asarray(static_gap)
     figures = {
         "start_s": start_s, "reached_goal": reached_s is not None, "time_to_goal_s": reached_s,
         "contact_frames": int(np.sum(clearance_arr < 0.0)), "min_clearance_m": float(clearance_arr.min()),
+        "walker_contacts": _onsets(contact_flags, frame_ids, times, 0.0),
+        "near_misses": _onsets(near_flags, frame_ids, times, NEAR_MISS_MERGE_S),
+        "static_contacts": int(np.sum((static_arr[1:] < 0.0) & (static_arr[:-1] >= 0.0)) + (static_arr[0] < 0.0)),
+        "min_static_clearance_m": float(static_arr.min()),
+        "longest_stop_s": _longest_run(np.asarray(speeds) < STANDING_SPEED_MPS, skip_first=True) * period,
         "cycles": len(solve_ms), "statuses": statuses,
+        "failed_cycles": sum(n for status, n in statuses.items() if status not in _PLAN_FOLLOWED),
+        "least_violation_cycles": statuses.get("least_violation", 0),
         "solve_ms_median": float(np.median(solve_ms)) if solve_ms else None,
         "solve_ms_p95": float(np.percentile(solve_ms, 95)) if solve_ms else None,
+        "solve_ms_max": float(np.max(solve_ms)) if solve_ms else None,
     }
     return figures, np.asarray(times), clearance_arr
+
+
+def _longest_run(flags, skip_first=False):
+    """Length of the longest run of True in `flags`; with skip_first, a run from index 0 (the robot at
+    rest before its first command) does not count."""
+    longest = current = 0
+    leading = skip_first
+    for flag in flags:
+        if flag and not leading:
+            current += 1
+            longest = max(longest, current)
+        else:
+            current = 0
+            leading = leading and flag
+    return longest
+
+
+@dataclass(frozen=True)
+class CellOutcome:
+    """What one closed-loop run of a sweep cell gives (see `crossing` for the definitions)."""
+
+    reached_goal: bool
+    time_to_goal_s: float       # None when the goal was not reached
+    walker_contacts: int        # approaches of a walker ending in discs overlapping
+    contact_frames: int         # 10 Hz frames with a walker's disc overlapping the robot's
+    static_contacts: int        # times the robot's disc reached a wall or fixed obstacle of the scenario
+    min_clearance_m: float
+    min_static_clearance_m: float
+    near_misses: int
+    longest_stop_s: float
+    cycles: int
+    least_violation_cycles: int
+    failed_cycles: int
+    solve_ms_median: float
+    solve_ms_p95: float
+    solve_ms_max: float
+    cell_s: float               # wall time of the cell on its worker, crowd simulation included
+
+
+def run_cell(params_file, scenario_path, seed, start_s, duration_s, planner_overrides, tracker_overrides=None,
+             reaction_strength_m2_s2=0.0, max_cycles=None, mpc_cache=None):
+    """One closed loop for a sweep: returns a CellOutcome. Raises ValueError for bad input.
+
+    mpc_cache: an optional dict reused between calls in one process, so a worker builds each
+    planner (a CasADi problem) once per distinct setting set.
+    """
+    from riskbound.planning.mpc import ChanceConstrainedMPC
+
+    started = time.perf_counter()
+    planner, tracker, max_accel = load_settings(params_file, dict(planner_overrides), dict(tracker_overrides or {}))
+    if not (np.isfinite(reaction_strength_m2_s2) and reaction_strength_m2_s2 >= 0.0):
+        raise ValueError(f"reaction_strength_m2_s2={reaction_strength_m2_s2!r}: must be a finite number >= 0")
+    key = repr(planner)
+    if mpc_cache is None or key not in mpc_cache:
+        mpc = ChanceConstrainedMPC(planner)
+        if mpc_cache is not None:
+            mpc_cache[key] = mpc
+    else:
+        mpc = mpc_cache[key]
+    if reaction_strength_m2_s2 > 0.0:
+        from riskbound.crowd.scenario import load_scenario
+
+        scenario = load_scenario(scenario_path)
+        if scenario.robot_start is None or scenario.robot_goal is None:
+            raise ValueError(f"{scenario_path}: needs robot_start and robot_goal for a crossing")
+        crowd = ReactingCrowd(scenario, seed, duration_s, reaction_strength_m2_s2, planner.robot_radius_m)
+    else:
+        scenario, frames, detections = crowd_frames(scenario_path, seed, duration_s)
+        crowd = ReplayedCrowd(frames, detections)
+    figures, _, _ = crossing(planner, tracker, max_accel, scenario, crowd, start_s, mpc, max_cycles)
+    values = {f.name: figures[f.name] for f in fields(CellOutcome) if f.name != "cell_s"}
+    return CellOutcome(**values, cell_s=time.perf_counter() - started)
 
 
 def _plot(series, path):
@@ -217,8 +398,8 @@ def run(args):
             sys.stderr.write(f"\r[{len(rows) + 1}/{total}] seed {seed}, start {start_s:g} s   ")
             sys.stderr.flush()
             try:
-                figures, times, clearance = crossing(planner, tracker, max_accel, scenario, frames, detections,
-                                                     start_s, mpc)
+                figures, times, clearance = crossing(planner, tracker, max_accel, scenario,
+                                                     ReplayedCrowd(frames, detections), start_s, mpc)
             except ValueError as error:
                 sys.stderr.write("\n")
                 print(f"riskbound bench crowdloop: error: {error}", file=sys.stderr)
@@ -233,8 +414,7 @@ def run(args):
     print(f"{'seed':>5} {'start s':>8} {'goal s':>7} {'contact':>8} {'min clear m':>12} {'least viol.':>12} "
           f"{'failed':>7} {'solve ms med/p95':>17}")
     for row in rows:
-        failed = sum(n for status, n in row["statuses"].items()
-                     if status not in ("solved", "feasible_not_converged", "least_violation"))
+        failed = row["failed_cycles"]
         goal = f"{row['time_to_goal_s']:.1f}" if row["reached_goal"] else "—"
         print(f"{row['seed']:>5} {row['start_s']:>8g} {goal:>7} {row['contact_frames']:>8} "
               f"{row['min_clearance_m']:>12.3f} {row['statuses'].get('least_violation', 0):>12} {failed:>7} "
