@@ -80,7 +80,7 @@ def test_mixed_integer_plan_is_outside_its_inflated_box_at_every_step():
     assert result.success, result.status
     _check_dynamics_and_bounds(result, SETTINGS, x0)
     boxes = result.constraints
-    # Uniform allocation by Boole's inequality: α / (steps × obstacles) (ARCHITECTURE.md, step 4).
+    # Uniform allocation by Boole's inequality: α / (steps × obstacles) (README.md, How it works, item 4).
     assert boxes.risk == pytest.approx(SETTINGS.risk_level / SETTINGS.horizon_steps)
     np.testing.assert_allclose(boxes.robot_position_covariances, _robot_position_covariances(SETTINGS, x0),
                                atol=1e-12)

@@ -160,7 +160,7 @@ def test_groups_walk_together():
 
 
 def test_desired_speeds_follow_the_configured_normal():
-    # Desired speeds ~ N(1.34, 0.26) m/s, Phys. Rev. E 51, 4282 (1995), Sec. II (value from memory);
+    # Desired speeds ~ N(1.34, 0.26) m/s, Phys. Rev. E 51, 4282 (1995) (value from memory);
     # with clipping far out in the tails the draws pass a KS test against scipy's normal.
     scenario = scenario_with(desired_speed={"distribution": "normal", "mean_m_s": 1.34, "sd_m_s": 0.26,
                                             "min_m_s": 0.01, "max_m_s": 5.0})

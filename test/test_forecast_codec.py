@@ -48,7 +48,7 @@ def test_round_trip_field_by_field():
     assert (cloud.header.stamp.sec, cloud.header.stamp.nanosec) == (1_700_000_000, 250_000_000)
     assert (cloud.height, cloud.width) == (1, 3 * 7)
     assert [f.name for f in cloud.fields] == list(FIELD_NAMES)
-    # 2 uint32 + 9 float32 = 44 bytes per point, little-endian (the schema in ARCHITECTURE.md).
+    # 2 uint32 + 9 float32 = 44 bytes per point, little-endian (the `obstacle_forecast` fields in README.md, Planner node).
     assert cloud.point_step == 44 and not cloud.is_bigendian and len(cloud.data) == 44 * 21
 
     decoded = cloud_to_forecast(cloud)

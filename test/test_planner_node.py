@@ -222,7 +222,7 @@ def test_inputs_in_plan_command_and_status_out(graph):
     assert values["status"] == "solved" and values["risk_allocation"] == "joint"
     considered = int(values["obstacles_considered"])
     assert considered >= 1, "the walker standing 1.6 m ahead is within reach and must be constrained"
-    # Joint allocation splits α uniformly over steps × obstacles (Boole's inequality; ARCHITECTURE.md §method 4).
+    # Joint allocation splits α uniformly over steps × obstacles (Boole's inequality; README.md, How it works, item 4).
     assert float(values["risk_per_constraint"]) == pytest.approx(0.05 / (HORIZON_STEPS * considered), rel=1e-5)
     assert float(values["min_margin_m"]) >= -1e-3, "the plan must lie outside every obstacle ellipse"
 

@@ -16,12 +16,14 @@ from riskbound.crowd.social_force import (
 
 PARAMS = SocialForceParameters()
 OPEN_FIELD = Geometry.build()
-V0 = 1.34   # m/s, mean desired speed, Phys. Rev. E 51, 4282 (1995), Sec. II (value from memory)
+V0 = 1.34   # m/s, mean desired speed, Phys. Rev. E 51, 4282 (1995) (value from memory)
 TAU = 0.5   # s, relaxation time, same paper (value from memory)
 
 
 def test_published_parameter_values():
-    # Phys. Rev. E 51, 4282 (1995), Sec. III simulation parameters (value from memory):
+    # Checks that the defaults are consistent with the values cited for Phys. Rev. E 51, 4282
+    # (1995) (value from memory, the same memory the defaults were written from, so this guards
+    # against an edited default, not against a misremembered number):
     # τ = 0.5 s, V⁰ = 2.1 m²/s², σ = 0.3 m, Δt = 2 s, U⁰ = 10 m²/s², R = 0.2 m, 2φ = 200°, c = 0.5,
     # v_max = 1.3 v⁰.
     assert (PARAMS.relaxation_time_s, PARAMS.pedestrian_strength_m2_s2, PARAMS.pedestrian_range_m) == (0.5, 2.1, 0.3)

@@ -13,8 +13,8 @@ cost gap of a method is cost / cost_mixed_integer − 1 on the instances both so
 "stuck" on an instance when it returns no usable plan, or a plan ending with less than half the
 progress towards the goal that the mixed-integer plan makes (it stopped in front of the obstacle).
 
-Suite (b), closed loop: our own invented scene, a station concourse (30 m × 20 m hall) with
-constant-velocity walkers, 60 % in the two commuter streams along the hall and the rest crossing
+Suite (b), closed loop: our own invented scene, an exhibition hall (30 m × 20 m) with
+constant-velocity walkers, 60 % in the two visitor streams along the hall and the rest crossing
 in random directions, wrapping around at the walls so that the density stays constant. The robot
 crosses the hall along its length; the forecast it gets every cycle is a constant-velocity
 prediction from a noisy measurement of each walker (σ_p, σ_v), with covariance σ_p² + σ_v² t² per
@@ -67,7 +67,8 @@ METHODS = ("ours", "mixed_integer", "linearised", "robust_inflation")
 CROWD_METHODS = ("ours", "linearised", "robust_inflation")
 LABELS = {"ours": "ours (ellipse MPC)", "mixed_integer": "mixed-integer", "linearised": "linearised",
           "robust_inflation": "robust inflation"}
-# Targets of the issue (figures the field reports for this method family; common practice, no source).
+# Targets. Speed-up and mean cost gap: figures reported for this method family against the
+# mixed-integer formulation, recalled from memory (value from memory). Pruning ratio: our own target.
 TARGET_SPEEDUP = 142.0
 TARGET_COST_GAP = 0.04
 TARGET_PRUNING_RATIO = 2.0
@@ -76,7 +77,7 @@ WALKER_SPEED_MPS = (1.3, 0.2, 0.6, 1.8)
 WALKER_HALF_LENGTH_M = (0.15, 0.25)
 WALKER_HALF_WIDTH_M = (0.22, 0.3)
 SUBSTEPS = 5
-# The hall of the far walkers lies this far to the side of the concourse [m].
+# The hall of the far walkers lies this far to the side of the exhibition hall [m].
 FAR_HALL_OFFSET_M = 60.0
 GOAL_TOLERANCE_M = 0.3
 # A plan that ends with less than this share of the mixed-integer plan's progress stopped short.
@@ -289,11 +290,11 @@ def summarise_suite(records, settings):
             "cost_gaps": gaps}
 
 
-# --- suite (b): station concourse, closed loop ---------------------------------------------------
+# --- suite (b): exhibition hall, closed loop -----------------------------------------------------
 
 @dataclass
 class Concourse:
-    """The invented station concourse: hall size, robot route, measurement noise, time limit."""
+    """The invented exhibition hall: hall size, robot route, measurement noise, time limit."""
 
     walkers: int
     seed: int
@@ -322,7 +323,7 @@ class ConcourseWalkers:
     def __init__(self, scene):
         self.scene = scene
         rng = np.random.default_rng(scene.seed)
-        # The far hall draws from its own stream: the concourse is the same with or without it.
+        # The far hall draws from its own stream: the exhibition hall is the same with or without it.
         near = self._draw(rng, scene.walkers, 0.0)
         far = self._draw(np.random.default_rng([scene.seed, 1]), scene.far_walkers, FAR_HALL_OFFSET_M)
         self.positions, self.velocities, self.headings, self.half_extents, self.hall_y = (
@@ -498,7 +499,7 @@ def _first_tracks(forecast, count):
 def run_pruning(settings, low, high, seeds, scene_options, log):
     """Our median solve ms with `high` against `low` walkers, two ways.
 
-    Same hall: closed loops with `high` and with `low` walkers in the concourse (at 200 vs 40 the
+    Same hall: closed loops with `high` and with `low` walkers in the exhibition hall (at 200 vs 40 the
     local density is five times higher, so more walkers are in reach, not only more to prune).
     Far walkers: the closed loop with `low` walkers is recorded, its forecasts carrying also
     `high − low` walkers in a far hall; every cycle is then re-solved twice, interleaved so both
@@ -582,7 +583,7 @@ def markdown(report):
                      f"{100 * m['cost_gap_mean_where_obstacle_active']:+.1f} % | "
                      f"{100 * m['success_rate']:.0f} % | {m['collision_probability_mean']:.4f} | "
                      f"{m['collision_probability_max']:.4f} | {m['stuck']} |")
-    lines += ["", f"## (b) Station concourse, closed loop: {crowd['seeds']} seeds per size", "",
+    lines += ["", f"## (b) Exhibition hall, closed loop: {crowd['seeds']} seeds per size", "",
               "P(coll.) over all walkers; \"considered\": over the walkers the planner constrained that "
               "cycle (they differ when the slot cap drops reachable walkers).", "",
               "| method | walkers | success | collisions (robot stopped) | stuck | median ms | p90 ms "
@@ -636,7 +637,7 @@ def plots(report, crowd_results, out):
     pruning = report["pruning"]
     ax.plot([pruning["walkers_high"]], [pruning["solve_ms_median_high"]], "k*", markersize=10,
             label=f"ours, {pruning['walkers_high']} walkers")
-    ax.set_xlabel("walkers in the concourse")
+    ax.set_xlabel("walkers in the exhibition hall")
     ax.set_ylabel("solve time [ms] (median, bar to p90)")
     ax.set_yscale("log")
     ax.legend()
@@ -732,7 +733,7 @@ def run(args):
     log(f"suite (a): {instances} single-obstacle instances, methods {', '.join(METHODS)}")
     suite = run_suite(suite_settings, instances, args.seed, args.sigma_multiple, args.passes, mc_samples_suite,
                       args.mi_time_limit_s, log)
-    log(f"suite (b): concourse with {sizes} walkers, {seeds} seeds, methods {', '.join(CROWD_METHODS)}")
+    log(f"suite (b): exhibition hall with {sizes} walkers, {seeds} seeds, methods {', '.join(CROWD_METHODS)}")
     crowd_results = run_crowds(settings, sizes, seeds, args.sigma_multiple, mc_samples_crowd,
                                scene_options, log)
     crowd = {"sizes": list(sizes), "seeds": seeds, "methods": summarise_crowds(crowd_results, settings.risk_level)}

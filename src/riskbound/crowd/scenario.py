@@ -14,10 +14,10 @@ File layout (all lengths in metres, times in seconds, the planning frame's x-y p
     max_walkers: 120                  # arrivals beyond this many present walkers are turned away
     desired_speed:                    # v⁰ distribution, clipped to [min_m_s, max_m_s]
       distribution: normal            # normal | uniform | constant
-      mean_m_s: 1.34
-      sd_m_s: 0.26
-      min_m_s: 0.5
-      max_m_s: 2.2
+      mean_m_s: 1.34                  # published mean and sd: Phys. Rev. E 51, 4282 (1995) (value
+      sd_m_s: 0.26                    #   from memory); these are also the defaults
+      min_m_s: 0.6                    # our shipped files' clip (no source); default 0.3
+      max_m_s: 2.0                    # our shipped files' clip (no source); default 2.5
     robot_start: [x, y]               # hints for demos: where a robot starts and where it goes
     robot_goal: [x, y]
     walls: [[[x1, y1], [x2, y2]], ...]            # line segments
@@ -310,7 +310,7 @@ def _speed(value, field):
     if distribution not in DISTRIBUTIONS:
         raise ValueError(f"{field}.distribution={distribution!r}: allowed values are "
                          f"{', '.join(DISTRIBUTIONS)}")
-    # Phys. Rev. E 51, 4282 (1995), Sec. II: desired speeds roughly Gaussian, mean 1.34 m/s,
+    # Phys. Rev. E 51, 4282 (1995): desired speeds roughly Gaussian, mean 1.34 m/s,
     # standard deviation 0.26 m/s (value from memory of that paper).
     speed = SpeedDistribution(
         distribution=distribution,

@@ -60,8 +60,8 @@ CONTACT_ITERATIONS = 4
 
 @dataclass(frozen=True)
 class SocialForceParameters:
-    """Model constants. Defaults are the values in the text of Phys. Rev. E 51, 4282 (1995),
-    Sec. III (simulation parameters; value from memory of that paper)."""
+    """Model constants. Defaults are the simulation parameters given in Phys. Rev. E 51, 4282
+    (1995) (value from memory of that paper)."""
 
     relaxation_time_s: float = 0.5          # τ
     pedestrian_strength_m2_s2: float = 2.1  # V⁰
