@@ -1,0 +1,1 @@
+"""The static world without ROS: occupancy grids and the free-space half-planes built from them."""
