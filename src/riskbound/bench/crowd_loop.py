@@ -75,7 +75,7 @@ def add_arguments(parser):
     parser.add_argument("--out", default="out/bench", help="directory for crowdloop.json and crowdloop_clearance.png")
 
 
-def _overrides(items, option):
+def parse_name_values(items, option):
     values = {}
     for item in items:
         name, separator, text = item.partition("=")
@@ -374,8 +374,8 @@ def run(args):
     root = package_share("riskbound")
     try:
         planner, tracker, max_accel = load_settings(args.params_file or root / DEFAULT_PARAMS,
-                                                    _overrides(args.set, "--set"),
-                                                    _overrides(args.tracker_set, "--tracker-set"))
+                                                    parse_name_values(args.set, "--set"),
+                                                    parse_name_values(args.tracker_set, "--tracker-set"))
         scenario_path = args.scenario or root / DEFAULT_SCENARIO
         if not (np.isfinite(args.duration_s) and args.duration_s > 0.0):
             raise ValueError(f"--duration-s {args.duration_s}: must be > 0")
