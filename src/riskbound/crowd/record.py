@@ -13,6 +13,7 @@ import numpy as np
 from riskbound.crowd.scenario import load_scenario
 from riskbound.crowd.sensor import DetectorModel
 from riskbound.crowd.simulate import simulate
+from riskbound.crowd.static_map import scenario_occupancy
 from riskbound.logs import bag_io
 
 
@@ -94,7 +95,10 @@ def generate_crowd_bag(scenario_path, bag_path, seed=0, duration_s=None, rate_hz
             custom_data[name] = repr([float(hint[0]), float(hint[1])])
 
     missed = clutter = detections = 0
-    with bag_io.BagWriter(bag_path, bag_io.CROWD_TOPICS, storage=bag_format, custom_data=custom_data) as writer:
+    topics = {**bag_io.CROWD_TOPICS, **bag_io.MAP_TOPICS}
+    with bag_io.BagWriter(bag_path, topics, storage=bag_format, custom_data=custom_data) as writer:
+        static_map = scenario_occupancy(scenario, frame_id=frame_id)
+        writer.write(bag_io.TOPIC_MAP, frame_ns[0], bag_io.occupancy_grid_cdr(frame_ns[0], static_map))
         clock_index = 0
         for k, (frame, time_ns) in enumerate(zip(run.frames, frame_ns)):
             while clock_index < len(clock_ns) and clock_ns[clock_index] <= time_ns:

@@ -13,6 +13,7 @@ Crowd bags (written by `riskbound crowd`) hold:
 | /crowd_truth     | geometry_msgs/msg/PoseArray    | true walker poses (heading = walking direction)  |
 | /crowd_truth_ids | std_msgs/msg/UInt32MultiArray  | walker ids, same order as /crowd_truth; written with the same log time as its PoseArray, one dimension labelled `walker_id` |
 | /clock           | rosgraph_msgs/msg/Clock        | simulated time, for use_sim_time                 |
+| /map             | nav_msgs/msg/OccupancyGrid     | the scenario's walls, obstacles and bounds: one message at the start, stored latched (reliable, transient local); older bags have none |
 
 The ids go in a sibling UInt32MultiArray rather than a MarkerArray: it is the smallest standard
 message that carries unsigned ids losslessly, and pairing is by log time and index order.
@@ -35,6 +36,7 @@ from rosbags.rosbag2.errors import WriterError
 from rosbags.typesys import Stores, get_typestore
 
 from riskbound.motion.heading import quaternion_xyzw_to_yaw, yaw_to_quaternion_xyzw
+from riskbound.world.grid_message import grid_message_fields, occupancy_from_grid_message
 
 TYPESTORE = get_typestore(Stores.ROS2_HUMBLE)
 STORAGE_FORMATS = ("mcap", "sqlite3")
@@ -68,6 +70,13 @@ CROWD_TOPICS = {
     TOPIC_TRUTH_IDS: (UINT32_ARRAY, _qos(QosReliability.RELIABLE, 10)),
     TOPIC_CLOCK: (CLOCK, _qos(QosReliability.BEST_EFFORT, 1)),
 }
+
+TOPIC_MAP = "/map"
+OCCUPANCY_GRID = "nav_msgs/msg/OccupancyGrid"
+# Latched, as a map server offers it: a subscriber that comes late still gets the one message.
+MAP_TOPICS = {TOPIC_MAP: (OCCUPANCY_GRID, Qos(QosHistory.KEEP_LAST, 1, QosReliability.RELIABLE,
+                                              QosDurability.TRANSIENT_LOCAL, _NO_TIME, _NO_TIME,
+                                              QosLiveliness.AUTOMATIC, _NO_TIME, False))}
 
 _T = TYPESTORE.types
 
@@ -111,6 +120,21 @@ def ids_cdr(ids):
 def clock_cdr(time_ns):
     """Serialised rosgraph_msgs/Clock."""
     return TYPESTORE.serialize_cdr(_T[CLOCK](clock=_stamp(time_ns)), CLOCK)
+
+
+def occupancy_grid_cdr(time_ns, occupancy):
+    """Serialised nav_msgs/OccupancyGrid of an OccupancyMap, stamped (and map_load_time) `time_ns`."""
+    fields = grid_message_fields(occupancy)
+    stamp = _stamp(int(time_ns))
+    x, y, z = fields["position"]
+    qx, qy, qz, qw = fields["orientation"]
+    origin = _T["geometry_msgs/msg/Pose"](position=_T["geometry_msgs/msg/Point"](x=x, y=y, z=z),
+                                         orientation=_T["geometry_msgs/msg/Quaternion"](x=qx, y=qy, z=qz, w=qw))
+    info = _T["nav_msgs/msg/MapMetaData"](map_load_time=stamp, resolution=fields["resolution"],
+                                          width=fields["width"], height=fields["height"], origin=origin)
+    header = _T["std_msgs/msg/Header"](stamp=stamp, frame_id=fields["frame_id"])
+    message = _T[OCCUPANCY_GRID](header=header, info=info, data=fields["data"])
+    return TYPESTORE.serialize_cdr(message, OCCUPANCY_GRID)
 
 
 class BagWriter:
@@ -195,6 +219,7 @@ class CrowdBag:
     clock_s: np.ndarray        # (C,)
     metadata: dict = field(default_factory=dict)  # custom_data strings
     message_counts: dict = field(default_factory=dict)
+    static_map: object = None  # OccupancyMap from /map; None in a bag without one
 
 
 @contextmanager
@@ -297,6 +322,7 @@ def read_crowd_bag(path):
     """Read a crowd bag (see the module docstring) into a CrowdBag. Raises BagError."""
     path = Path(path)
     detections, truth, ids, clock = [], [], [], []
+    static_map = None
     with open_bag(path) as reader:
         topics = _topic_table(reader)
         for topic, (msgtype, _) in CROWD_TOPICS.items():
@@ -305,8 +331,11 @@ def read_crowd_bag(path):
                                f"{', '.join(CROWD_TOPICS)} (found: {', '.join(sorted(topics)) or 'none'})")
             if topics[topic][0] != msgtype:
                 raise BagError(f"{path}: topic {topic} has type {topics[topic][0]}, expected {msgtype}")
-        for topic, _, time_ns, message in _decoded(path, _raw_messages(reader, CROWD_TOPICS)):
-            if topic == TOPIC_CLOCK:
+        for topic, msgtype, time_ns, message in _decoded(path, _raw_messages(reader, [*CROWD_TOPICS, TOPIC_MAP])):
+            if topic == TOPIC_MAP:
+                if static_map is None:
+                    static_map = _map_from_message(path, msgtype, message)
+            elif topic == TOPIC_CLOCK:
                 clock.append(message.clock.sec + 1e-9 * message.clock.nanosec)
             elif topic == TOPIC_TRUTH_IDS:
                 ids.append((time_ns, np.asarray(message.data, dtype=np.uint32).copy()))
@@ -318,7 +347,26 @@ def read_crowd_bag(path):
     return CrowdBag(path=path, storage=storage, detections=_series(detections), truth=_series(truth),
                     truth_ids=truth_ids, clock_s=np.array(clock, dtype=float),
                     metadata=read_custom_data(path),
-                    message_counts={topic: count for topic, (_, count) in topics.items()})
+                    message_counts={topic: count for topic, (_, count) in topics.items()}, static_map=static_map)
+
+
+def read_static_map(path, expected_frame_id=None, **options):
+    """The first /map message of any bag as an OccupancyMap, or None when the bag has no /map.
+
+    options: occupied_threshold, unknown_is_occupied (riskbound.world.occupancy.OccupancyMap).
+    Raises BagError for an unreadable bag or a /map message that is not a usable map."""
+    for _, msgtype, _, message in read_messages(path, [TOPIC_MAP]):
+        return _map_from_message(path, msgtype, message, expected_frame_id, **options)
+    return None
+
+
+def _map_from_message(path, msgtype, message, expected_frame_id=None, **options):
+    if msgtype != OCCUPANCY_GRID:
+        raise BagError(f"{path}: topic {TOPIC_MAP} has type {msgtype}, expected {OCCUPANCY_GRID}")
+    try:
+        return occupancy_from_grid_message(message, expected_frame_id=expected_frame_id, **options)
+    except ValueError as error:
+        raise BagError(f"{path}: {TOPIC_MAP} does not hold a usable map: {error}") from None
 
 
 def _pair_ids(path, truth, ids):
