@@ -35,12 +35,13 @@ section on affine transformations of multivariate normal vectors). P(nᵀp < b) 
 holds iff nᵀp̂ ≥ b + Φ⁻¹(1 − a)·√(nᵀΣn): `halfplane_backoff` is that last term.
 """
 
+import itertools
 from dataclasses import dataclass
 
 import numpy as np
 
 from riskbound.risk.quantile import chance_constraint_backoff
-from riskbound.world.occupancy import OccupancyMap, as_points, square_gaps
+from riskbound.world.occupancy import OccupancyMap, as_points
 
 INACTIVE_NORMAL = (1.0, 0.0)
 INACTIVE_OFFSET = -1e6
@@ -150,22 +151,25 @@ def _greedy_planes(occupancy, references, radius, search, count):
     half = 0.5 * occupancy.resolution_m
     index = _candidates(cells, references, search + half * np.sqrt(2.0))
     valid = index >= 0
-    centres = cells.centres[np.where(valid, index, 0)]                 # (N, M, 2)
-    gaps, nearest = square_gaps(references[:, None, :], centres, half)  # (N, M), (N, M, 2)
+    safe = np.where(valid, index, 0)
+    centre_x, centre_y = cells.centres[:, 0][safe], cells.centres[:, 1][safe]   # (N, M)
+    excess_x = np.maximum(np.abs(references[:, :1] - centre_x) - half, 0.0)
+    excess_y = np.maximum(np.abs(references[:, 1:] - centre_y) - half, 0.0)
+    gaps = np.sqrt(excess_x * excess_x + excess_y * excess_y)           # reference to each square
     alive = valid & (gaps <= search)
-    centre_x, centre_y = centres[..., 0], centres[..., 1]
     rows = np.arange(n_points)
     for k in range(count):
         j = np.argmin(np.where(alive, gaps, np.inf), axis=1)
         has = alive[rows, j]
         if not np.any(has):
             break
-        q = nearest[rows, j]
+        centre = np.column_stack([centre_x[rows, j], centre_y[rows, j]])
+        q = np.clip(references, centre - half, centre + half)   # the square's point nearest the reference
         gap = gaps[rows, j]
         n = (references - q) / np.where(gap > 0.0, gap, 1.0)[:, None]
         on_face = gap <= 0.0
         if np.any(on_face):
-            n[on_face] = _face_normals(references[on_face] - centres[rows, j][on_face])
+            n[on_face] = _face_normals(references[on_face] - centre[on_face])
         touch = np.sum(n * q, axis=1)  # the chosen square's support in direction n
         # Excluded: support of the grown square ≤ b, i.e. nᵀc + (s/2)‖n‖₁ ≤ nᵀq (ρ cancels).
         limit = touch - half * np.abs(n).sum(axis=1) + _EXCLUSION_TOLERANCE_M
@@ -180,10 +184,12 @@ def _greedy_planes(occupancy, references, radius, search, count):
 def _candidates(cells, references, reach):
     """Indices (N, M) of cells whose centres lie within `reach` of each reference, −1 padded."""
     found = cells.tree.query_ball_point(references, reach, return_sorted=False)
-    lengths = np.fromiter(map(len, found), dtype=int, count=len(found))
-    index = np.full((len(references), max(int(lengths.max()), 1)), -1)
-    if lengths.sum():
-        index[np.arange(index.shape[1]) < lengths[:, None]] = np.concatenate(found)
+    lengths = np.fromiter(map(len, found), dtype=np.intp, count=len(found))
+    index = np.full((len(references), max(int(lengths.max()), 1)), -1, dtype=np.intp)
+    total = int(lengths.sum())
+    if total:
+        flat = np.fromiter(itertools.chain.from_iterable(found), dtype=np.intp, count=total)
+        index[np.arange(index.shape[1]) < lengths[:, None]] = flat
     return index
 
 
