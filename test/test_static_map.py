@@ -113,3 +113,10 @@ def test_static_contacts_counts_contacts_and_time_outside():
 def test_bad_bounds_are_named(bounds):
     with pytest.raises(ValueError, match="bounds="):
         rasterise(bounds)
+
+
+def test_bad_resolution_and_radius_are_named():
+    with pytest.raises(ValueError, match="more than 16000000"):
+        rasterise(BOUNDS, resolution_m=0.001)
+    with pytest.raises(ValueError, match="robot_radius_m=-0.1"):
+        static_clearance([[1.0, 1.0]], -0.1, rasterise(BOUNDS))

@@ -18,7 +18,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from riskbound.world.occupancy import OccupancyMap, as_points, square_gaps
+from riskbound.world.occupancy import MAX_CELLS, OccupancyMap, as_points, square_gaps
 
 DEFAULT_RESOLUTION_M = 0.05
 # Free space around the bounds' walls, so a robot that crosses them is seen outside, not inside a
@@ -71,9 +71,9 @@ def rasterise(bounds, walls=(), obstacle_centres=(), obstacle_radii=(), resoluti
     origin = np.array([x_min - MAP_MARGIN_M, y_min - MAP_MARGIN_M])
     width = int(np.ceil((x_max - x_min + 2.0 * MAP_MARGIN_M) / resolution_m - 1e-9))
     height = int(np.ceil((y_max - y_min + 2.0 * MAP_MARGIN_M) / resolution_m - 1e-9))
-    if width * height > 4000 * 4000:
-        raise ValueError(f"resolution_m={resolution_m!r}: the bounds {list(bounds)} need {width} x {height} cells; "
-                         "choose a coarser resolution")
+    if width * height > MAX_CELLS:
+        raise ValueError(f"resolution_m={resolution_m!r}: the bounds {list(bounds)} need {width} x {height} cells, "
+                         f"more than {MAX_CELLS}; choose a coarser resolution")
     occupied = np.zeros((height, width), dtype=bool)
     for start, end in np.concatenate([walls, bounds_walls(bounds)]):
         _mark_segment(occupied, origin, resolution_m, start, end)
@@ -88,7 +88,8 @@ def static_clearance(positions, robot_radius_m, occupancy):
     """Signed clearance [m] of a robot disc at each position (N, 2) to the occupied cells: the
     signed distance of its centre to occupied space minus its radius (negative in contact);
     inf on a map with nothing occupied."""
-    if isinstance(robot_radius_m, bool) or not np.isfinite(robot_radius_m) or robot_radius_m < 0.0:
+    if isinstance(robot_radius_m, bool) or not isinstance(robot_radius_m, (int, float, np.floating, np.integer)) \
+            or not np.isfinite(robot_radius_m) or robot_radius_m < 0.0:
         raise ValueError(f"robot_radius_m={robot_radius_m!r}: must be a finite number >= 0")
     return occupancy.signed_distance(as_points(positions, "positions")) - float(robot_radius_m)
 
