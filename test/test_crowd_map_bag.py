@@ -1,21 +1,28 @@
 """Crowd bags carry the scenario's static world: one latched nav_msgs/OccupancyGrid on /map at the
 start, the message a node would publish, replayed latched."""
 
+import subprocess
+import sys
+import time
 from pathlib import Path
 
 import numpy as np
 import pytest
+import rclpy
 from nav_msgs.msg import OccupancyGrid
+from rclpy.executors import SingleThreadedExecutor
 from rclpy.qos import DurabilityPolicy, ReliabilityPolicy
 from rclpy.serialization import deserialize_message
 from rosbags.interfaces import QosDurability, QosReliability
+from rosbags.typesys import Stores, get_typestore
 
+from node_helpers import stop_process_group
 from riskbound.crowd.record import generate_crowd_bag
 from riskbound.crowd.scenario import load_scenario
 from riskbound.crowd.static_map import scenario_occupancy
 from riskbound.logs import bag_io
 from riskbound.logs.playback import BagPlayback, ReplaySettings
-from riskbound.ros.map_messages import occupancy_to_message
+from riskbound.ros.map_messages import MAP_QOS, occupancy_from_message, occupancy_to_message
 from riskbound.ros.message_types import qos_from_bag
 
 SCENARIO = Path(__file__).resolve().parent.parent / "config" / "crowd_courtyard_40.yaml"
@@ -91,3 +98,45 @@ def test_a_damaged_map_is_a_bag_error(crowd_bag, tmp_path):
         writer.write(bag_io.TOPIC_MAP, 0, bytes(broken))
     with pytest.raises(bag_io.BagError, match="does not hold a usable map: values: 20 cells outside -1..100"):
         bag_io.read_static_map(path)
+
+
+def test_bag_and_live_type_definitions_agree():
+    # Bags are written with the Humble definitions (bag_io); the nodes run Kilted. The type hash
+    # (REP-2011 type description hash, computed by rosbags) must be the same in both.
+    assert (get_typestore(Stores.ROS2_HUMBLE).hash_rihs01(bag_io.OCCUPANCY_GRID)
+            == get_typestore(Stores.ROS2_KILTED).hash_rihs01(bag_io.OCCUPANCY_GRID))
+
+
+def test_replay_keeps_the_map_for_a_subscriber_that_comes_late(crowd_bag, tmp_path):
+    # Transient-local durability: a late-joining subscriber with a transient-local request receives
+    # the last message a live publisher sent (DDS durability QoS, common practice, no source).
+    log_path = tmp_path / "replay.log"
+    with open(log_path, "w") as log:
+        replay = subprocess.Popen([sys.executable, "-m", "riskbound.ros.replay_node", "--ros-args",
+                                   "-p", f"bag:={crowd_bag}", "-p", "repeat:=false", "-p", "exit_at_end:=false",
+                                   "-p", "await_timeout_s:=0.0"],
+                                  stdout=log, stderr=subprocess.STDOUT, start_new_session=True)
+    context = rclpy.Context()
+    rclpy.init(context=context)
+    node = None
+    try:
+        deadline = time.monotonic() + 30.0
+        while "done:" not in log_path.read_text() and time.monotonic() < deadline:
+            assert replay.poll() is None, log_path.read_text()
+            time.sleep(0.1)
+        assert "done:" in log_path.read_text(), log_path.read_text()   # the map went out before we listen
+        received = []
+        node = rclpy.create_node("late_map_listener", context=context)
+        node.create_subscription(OccupancyGrid, bag_io.TOPIC_MAP, received.append, MAP_QOS)
+        executor = SingleThreadedExecutor(context=context)
+        executor.add_node(node)
+        while not received and time.monotonic() < deadline:
+            executor.spin_once(timeout_sec=0.1)
+        assert len(received) == 1, log_path.read_text()
+        occupancy = occupancy_from_message(received[0], expected_frame_id="odom")
+        np.testing.assert_array_equal(occupancy.values, bag_io.read_static_map(crowd_bag).values)
+    finally:
+        if node is not None:
+            node.destroy_node()
+        rclpy.try_shutdown(context=context)
+        stop_process_group(replay)
