@@ -13,7 +13,7 @@ import xml.etree.ElementTree as ET
 from pathlib import Path
 
 REPO = Path(__file__).resolve().parents[1]
-OUR_MODULES = {"riskbound", "node_helpers", "test_closed_loop"}
+OUR_MODULES = {"riskbound", "node_helpers", "test_closed_loop", "test_occupancy"}
 
 # rosdep keys of the Python libraries, from ros/rosdistro rosdep/python.yaml (casadi-pip,
 # python3-filterpy-pip checked there; python3-numpy, python3-scipy, python3-matplotlib,
