@@ -312,11 +312,12 @@ class CellOutcome:
 
 
 def run_cell(params_file, scenario_path, seed, start_s, duration_s, planner_overrides, tracker_overrides=None,
-             reaction_strength_m2_s2=0.0, max_cycles=None, mpc_cache=None):
+             reaction_strength_m2_s2=0.0, max_cycles=None):
     """One closed loop for a sweep: returns a CellOutcome. Raises ValueError for bad input.
 
-    mpc_cache: an optional dict reused between calls in one process, so a worker builds each
-    planner (a CasADi problem) once per distinct setting set.
+    The planner is built afresh for every cell (a few milliseconds once the process has built one):
+    a planner kept from an earlier cell carries solver state that changes the last digits of the
+    next cell's plans, and a closed loop turns those into different runs.
     """
     from riskbound.planning.mpc import ChanceConstrainedMPC
 
@@ -324,13 +325,7 @@ def run_cell(params_file, scenario_path, seed, start_s, duration_s, planner_over
     planner, tracker, max_accel = load_settings(params_file, dict(planner_overrides), dict(tracker_overrides or {}))
     if not (np.isfinite(reaction_strength_m2_s2) and reaction_strength_m2_s2 >= 0.0):
         raise ValueError(f"reaction_strength_m2_s2={reaction_strength_m2_s2!r}: must be a finite number >= 0")
-    key = repr(planner)
-    if mpc_cache is None or key not in mpc_cache:
-        mpc = ChanceConstrainedMPC(planner)
-        if mpc_cache is not None:
-            mpc_cache[key] = mpc
-    else:
-        mpc = mpc_cache[key]
+    mpc = ChanceConstrainedMPC(planner)
     if reaction_strength_m2_s2 > 0.0:
         from riskbound.crowd.scenario import load_scenario
 

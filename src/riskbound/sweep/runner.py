@@ -8,7 +8,7 @@ to the others (Dask's own recovery); a cell is written once, whoever finished it
 
 The embedded cluster listens on 127.0.0.1 only and has no dashboard. Each worker is one process
 with one thread (the planner's solver is single-threaded; two threads in one process would share
-one interpreter lock) and keeps the planners it has built for reuse by later cells.
+one interpreter lock).
 """
 
 import logging
@@ -23,8 +23,6 @@ from pathlib import Path
 from riskbound.sweep.store import ResultStore
 
 LOG = logging.getLogger(__name__)
-# Planners a worker keeps built between cells (one per distinct setting set; a sweep has few).
-_MPC_CACHE = {}
 # Redraw the progress bar at most this often [s].
 _PROGRESS_PERIOD_S = 0.5
 _BAR_WIDTH = 30
@@ -63,7 +61,7 @@ def execute_cell(cell):
     planner, _, _ = load_settings(cell.params_file, cell.planner_overrides(), {})
     outcome = run_cell(cell.params_file, cell.scenario, cell.seed, cell.start_s, cell.duration_s,
                        cell.planner_overrides(), reaction_strength_m2_s2=cell.reaction_strength_m2_s2,
-                       max_cycles=max_cycles, mpc_cache=_MPC_CACHE)
+                       max_cycles=max_cycles)
     return cell, outcome, planner.robot_model, f"{socket.gethostname()}:{os.getpid()}"
 
 
