@@ -23,16 +23,18 @@ is violated by the depth plus ρ, which is the shortest push out).
 
 Guarantee (for `uncovered` = 0): every position x within search_radius_m − robot_radius_m of the
 reference that satisfies all planes has its disc clear of all occupied space, interior cells
-included. Outside occupied space the point of it nearest x lies on a surface cell in range,
-excluded by some plane; inside it, the segment from the reference to x first meets occupied space
-on such a cell, and since each plane's excluded cells have support at most nᵀr − (clearance) the
-plane is violated from there on. A planner that keeps each step's move within that radius
-(a trust region) keeps this guarantee; `uncovered` > 0 says K planes were not enough.
+included. Outside occupied space, the point of it nearest x lies on a surface cell in range, and
+x lies inside that cell's grown square, which some plane excludes. Inside occupied space, the
+segment from the reference to x first meets it at a point y of a surface cell in range; the plane
+excluding that cell has nᵀy ≤ b − ρ and, as every square it excludes, support at most nᵀq ≤ nᵀr,
+so nᵀ(x − r) ≤ 0 and nᵀx ≤ nᵀy < b. A planner that keeps each step's move within that radius (a
+trust region) keeps the guarantee; `uncovered` > 0 says K planes were not enough. With the
+planes, the disc can touch occupied space only if some active plane is violated, so per-plane
+risks that add up (Boole's inequality) bound the static collision risk of a step.
 
-Chance constraint: for p ~ N(p̂, Σ), nᵀp ~ N(nᵀp̂, nᵀΣn), so P(nᵀp < b) = Φ((b − nᵀp̂)/√(nᵀΣn))
-exactly (the distribution of a linear form of a Gaussian vector, e.g. any probability textbook's
-section on affine transformations of multivariate normal vectors). P(nᵀp < b) ≤ a therefore
-holds iff nᵀp̂ ≥ b + Φ⁻¹(1 − a)·√(nᵀΣn): `halfplane_backoff` is that last term.
+Chance constraint: for p ~ N(p̂, Σ), nᵀp ~ N(nᵀp̂, nᵀΣn) (a linear form of a Gaussian vector is
+Gaussian; common practice, no source), so P(nᵀp < b) = Φ((b − nᵀp̂)/√(nᵀΣn)) exactly, and
+P(nᵀp < b) ≤ a holds iff nᵀp̂ ≥ b + Φ⁻¹(1 − a)·√(nᵀΣn): `halfplane_backoff` is that last term.
 """
 
 import itertools
