@@ -120,3 +120,14 @@ def test_bad_resolution_and_radius_are_named():
         rasterise(BOUNDS, resolution_m=0.001)
     with pytest.raises(ValueError, match="robot_radius_m=-0.1"):
         static_clearance([[1.0, 1.0]], -0.1, rasterise(BOUNDS))
+
+
+def test_committed_scenarios_leave_the_robot_crossing_clear_on_the_grid():
+    # The exact-geometry check of test_crowd_scenario (0.5 m robot clear of walls and obstacles
+    # along the straight crossing) must survive rasterisation, which only adds up to one cell.
+    for path in sorted(CONFIG.glob("crowd_*.yaml")):
+        scenario = load_scenario(path)
+        occupancy = scenario_occupancy(scenario)
+        line = np.linspace(scenario.robot_start, scenario.robot_goal, 400)
+        assert np.min(static_clearance(line, 0.5, occupancy)) > 0.0, path
+        assert not outside_bounds(line, scenario.bounds()).any(), path
