@@ -101,55 +101,55 @@ class ProgressBar:
             self.stream.flush()
 
 
-def _record(store, version, bar, cell, result=None, error=None):
-    if error is None:
-        _, outcome, robot_model, worker = result
-        store.add_run(cell, outcome, robot_model, version, worker)
-        bar.update(done=1)
-    else:
-        store.add_failure(cell, error, version)
-        LOG.warning("cell %s (%s, seed %d, α %g) failed: %s", cell.key, cell.scenario, cell.seed,
-                    cell.risk_level, error)
-        bar.update(failed=1)
-
-
-def run_serial(cells, store, version, bar):
-    """Run the cells here, one after another. Returns (done, failed)."""
-    done = failed = 0
-    for cell in cells:
+def _tasks_serial(items, function, on_result, on_error):
+    for item in items:
         try:
-            result = execute_cell(cell)
-        except Exception as error:  # noqa: BLE001 - as on the cluster: the cell fails, the sweep goes on
-            _record(store, version, bar, cell, error=f"{type(error).__name__}: {error}")
-            failed += 1
+            result = function(item)
+        except Exception as error:  # noqa: BLE001 - as on the cluster: the item fails, the batch goes on
+            on_error(item, f"{type(error).__name__}: {error}")
         else:
-            _record(store, version, bar, cell, result=result)
-            done += 1
-    return done, failed
+            on_result(item, result)
 
 
-def run_on_client(cells, store, version, bar, client):
-    """Run the cells on a Dask client's cluster, writing rows as they come back. Returns (done, failed)."""
+def _tasks_on_client(items, function, on_result, on_error, client, key):
     from distributed import as_completed
 
-    futures = {client.submit(execute_cell, cell, key=f"sweep-cell-{cell.key}", pure=False): cell for cell in cells}
-    done = failed = 0
+    futures = {client.submit(function, item, key=key(item), pure=False): item for item in items}
     try:
         for future in as_completed(futures):
-            cell = futures[future]
+            item = futures[future]
             try:
                 result = future.result()
-            except Exception as error:  # noqa: BLE001 - any error of a run is that cell's failure, the sweep goes on
-                _record(store, version, bar, cell, error=f"{type(error).__name__}: {error}")
-                failed += 1
+            except Exception as error:  # noqa: BLE001 - any error of a task is that item's failure, the batch goes on
+                on_error(item, f"{type(error).__name__}: {error}")
             else:
-                _record(store, version, bar, cell, result=result)
-                done += 1
+                on_result(item, result)
             future.release()
     except BaseException:
         client.cancel(list(futures))  # interrupted: nothing more to compute for this client
         raise
-    return done, failed
+
+
+def run_tasks(items, function, on_result, on_error, key, workers=2, scheduler=None, serial=False):
+    """function(item) for every item: here one after another (serial), on an existing Dask cluster
+    (scheduler address) or on an embedded local cluster of `workers` processes. on_result(item,
+    result) and on_error(item, message) are called here, in this process, as each item finishes.
+    key(item): a unique task name."""
+    if not serial and scheduler is None and workers < 1:
+        raise ValueError(f"workers={workers!r}: must be >= 1")
+    if not items:
+        return
+    if serial:
+        _tasks_serial(items, function, on_result, on_error)
+        return
+    from distributed import Client
+
+    if scheduler is not None:
+        with Client(scheduler, timeout="20s") as client:
+            _tasks_on_client(items, function, on_result, on_error, client, key)
+    else:
+        with local_cluster(workers) as cluster, Client(cluster) as client:
+            _tasks_on_client(items, function, on_result, on_error, client, key)
 
 
 def local_cluster(workers):
@@ -184,20 +184,21 @@ def run_sweep(cells, db_path, workers=2, scheduler=None, serial=False, stream=No
         if skipped:
             LOG.info("%d of %d cells are already in %s: not run again", skipped, len(cells), db_path)
         bar = ProgressBar(len(todo), stream)
-        try:
-            if not todo:
-                done = failed = 0
-            elif serial:
-                done, failed = run_serial(todo, store, version, bar)
-            else:
-                from distributed import Client
 
-                if scheduler is not None:
-                    with Client(scheduler, timeout="20s") as client:
-                        done, failed = run_on_client(todo, store, version, bar, client)
-                else:
-                    with local_cluster(workers) as cluster, Client(cluster) as client:
-                        done, failed = run_on_client(todo, store, version, bar, client)
+        def stored(cell, result):
+            _, outcome, robot_model, worker = result
+            store.add_run(cell, outcome, robot_model, version, worker)
+            bar.update(done=1)
+
+        def failed(cell, message):
+            store.add_failure(cell, message, version)
+            LOG.warning("cell %s (%s, seed %d, α %g) failed: %s", cell.key, cell.scenario, cell.seed,
+                        cell.risk_level, message)
+            bar.update(failed=1)
+
+        try:
+            run_tasks(todo, execute_cell, stored, failed, key=lambda cell: f"sweep-cell-{cell.key}",
+                      workers=workers, scheduler=scheduler, serial=serial)
         finally:
             bar.close()
-    return SweepSummary(len(cells), skipped, done, failed, time.perf_counter() - started)
+    return SweepSummary(len(cells), skipped, bar.done, bar.failed, time.perf_counter() - started)
