@@ -18,6 +18,8 @@ SUBCOMMANDS = {
     "review": ("riskbound.logs.review.cli", "find near-misses in a recorded bag, explain them, replan them"),
     "launch": ("riskbound.launch_runner", "run a ROS 2 XML launch file of this package without the ROS launch tools"),
     "closedloop": ("riskbound.closed_loop", "replay a crowd bag through the full stack with a simulated robot and report"),
+    "sweep": ("riskbound.sweep.cli", "closed loops over a grid (α, scenario, seed, ...) on Dask; SQLite results, report"),
+    "fleetreview": ("riskbound.logs.fleet_review", "review every bag under a directory on Dask; per-bag reports, a table"),
 }
 
 
