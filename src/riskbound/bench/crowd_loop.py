@@ -196,7 +196,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
     """One crossing from start_s into the recording of `crowd` (ReplayedCrowd or ReactingCrowd),
     at most `max_cycles` planning cycles (None: until the recording ends). Returns a dict of
     figures and the clearance series (times, clearance)."""
-    from riskbound.crowd.social_force import Geometry, boundary_clearance
+    from riskbound.crowd.static_map import scenario_occupancy, static_contacts
     from riskbound.motion.forecast import ObstacleForecast
     from riskbound.motion.simulated_robot import SimRobotSettings, SimulatedRobot
     from riskbound.tracking.tracker import MultiTargetTracker
@@ -207,7 +207,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
                                             initial_y=float(start[1]), initial_yaw=heading,
                                             max_accel_mps2=max_accel))
     tracker = MultiTargetTracker(tracker_settings)
-    geometry = Geometry.build(scenario.walls, scenario.obstacle_centres, scenario.obstacle_radii)
+    occupancy = scenario_occupancy(scenario)
     mpc.reset()
     grid = planner.step_s * np.arange(1, planner.horizon_steps + 1)
     period = 1.0 / FRAME_RATE_HZ
@@ -221,7 +221,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
                          f"s (one second of tracking comes first)")
     if max_cycles is not None and max_cycles < 1:
         raise ValueError(f"max_cycles={max_cycles!r}: must be >= 1 or None")
-    times, clearance, static_gap, solve_ms, statuses = [], [], [], [], {}
+    times, clearance, robot_path, solve_ms, statuses = [], [], [], [], {}
     contact_flags, near_flags, frame_ids, speeds = [], [], [], []
     reached_s = None
     for k in range(first, crowd.frame_count):
@@ -233,7 +233,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
         gaps = np.linalg.norm(frame.positions - x0[0:2], axis=1) - planner.robot_radius_m - scenario.walker_radius_m
         times.append(frame.time_s - crowd.frames[leave].time_s)
         clearance.append(float(gaps.min()) if len(gaps) else float("inf"))
-        static_gap.append(float(boundary_clearance(x0[None, 0:2], np.array([planner.robot_radius_m]), geometry)[0]))
+        robot_path.append(x0[0:2])
         contact_flags.append(gaps < 0.0)
         near_flags.append(gaps < NEAR_MISS_CLEARANCE_M)
         frame_ids.append(frame.ids)
@@ -255,14 +255,14 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
         for _ in range(ROBOT_SUBSTEPS):
             robot.step(command, period / ROBOT_SUBSTEPS)
     clearance_arr = np.asarray(clearance)
-    static_arr = np.asarray(static_gap)
+    static = static_contacts(times, np.asarray(robot_path), planner.robot_radius_m, occupancy, scenario.bounds())
     figures = {
         "start_s": start_s, "reached_goal": reached_s is not None, "time_to_goal_s": reached_s,
         "contact_frames": int(np.sum(clearance_arr < 0.0)), "min_clearance_m": float(clearance_arr.min()),
         "walker_contacts": _onsets(contact_flags, frame_ids, times, 0.0),
         "near_misses": _onsets(near_flags, frame_ids, times, NEAR_MISS_MERGE_S),
-        "static_contacts": int(np.sum((static_arr[1:] < 0.0) & (static_arr[:-1] >= 0.0)) + (static_arr[0] < 0.0)),
-        "min_static_clearance_m": float(static_arr.min()),
+        "static_contact_frames": static.contact_samples, "min_static_clearance_m": static.min_clearance_m,
+        "time_outside_bounds_s": static.time_outside_bounds_s,
         "longest_stop_s": _longest_run(np.asarray(speeds) < STANDING_SPEED_MPS, skip_first=True) * period,
         "cycles": len(solve_ms), "statuses": statuses,
         "failed_cycles": sum(n for status, n in statuses.items() if status not in _PLAN_FOLLOWED),
@@ -297,9 +297,10 @@ class CellOutcome:
     time_to_goal_s: float       # None when the goal was not reached
     walker_contacts: int        # approaches of a walker ending in discs overlapping
     contact_frames: int         # 10 Hz frames with a walker's disc overlapping the robot's
-    static_contacts: int        # times the robot's disc reached a wall or fixed obstacle of the scenario
+    static_contact_frames: int  # 10 Hz frames with the robot's disc on a wall or fixed obstacle
     min_clearance_m: float
-    min_static_clearance_m: float
+    min_static_clearance_m: float  # riskbound.crowd.static_map: on the scenario's occupancy grid
+    time_outside_bounds_s: float
     near_misses: int
     longest_stop_s: float
     cycles: int

@@ -29,7 +29,7 @@ RATES = (
     ("walker_contact", "walker contact", lambda row: row["walker_contacts"] > 0),
     ("near_miss", f"near miss (< {NEAR_MISS_CLEARANCE_M:g} m)", lambda row: row["near_misses"] > 0),
     ("froze", f"froze (stood ≥ {FREEZE_S:g} s)", lambda row: row["longest_stop_s"] >= FREEZE_S),
-    ("static_contact", "wall/obstacle contact", lambda row: (row["static_contacts"] or 0) > 0),
+    ("static_contact", "wall/obstacle contact", lambda row: row["static_contact_frames"] > 0),
 )
 FIGURES = ("outcome_rates.png", "min_clearance.png", "time_to_goal.png")
 _DPI = 90
@@ -110,8 +110,9 @@ def markdown(summary, rows, figures):
         "a walker's disc overlapped the robot's at least once; *near miss* — a walker's disc came within "
         f"{NEAR_MISS_CLEARANCE_M:g} m of the robot's; *froze* — the robot stood (speed < 0.05 m/s) for "
         f"{FREEZE_S:g} s or longer on its way; *wall/obstacle contact* — the robot's disc reached a wall or fixed "
-        "obstacle of the scenario (the planner is not given the static world yet); *min clearance* — median "
-        "over runs of each run's smallest disc-to-disc gap to a walker, 5th percentile in brackets [m]; "
+        "obstacle of the scenario (riskbound.crowd.static_map; the closed loop does not give the planner the static "
+        "world yet); *min clearance* — median over runs of each run's smallest clearance between the robot and a "
+        "walker (as the closed-loop verdicts measure it, < 0: contact), 5th percentile in brackets [m]; "
         "*time to goal* — median (5th percentile) over the runs that arrived [s]; *least-violation / failed "
         "cycles* — share of all planning cycles whose plan entered a walker's ellipse (the risk bound did not "
         "hold for it) / that gave no plan (the robot braked); *solve p95* — median over runs of each run's "
@@ -242,7 +243,7 @@ def write_report(db_path, out_dir):
     out_dir.mkdir(parents=True, exist_ok=True)
     summary = summarise(rows)
     plot_rates(summary, out_dir / FIGURES[0])
-    _box_plot(summary, "min_clearance_m", "smallest clearance to a walker [m]\n(disc to disc; < 0: contact)",
+    _box_plot(summary, "min_clearance_m", "smallest clearance to a walker [m]\n(< 0: contact)",
               "minimum clearance per run against α", out_dir / FIGURES[1],
               reference=(NEAR_MISS_CLEARANCE_M, f"near miss below {NEAR_MISS_CLEARANCE_M:g} m"))
     _box_plot(summary, "time_to_goal_s", "time to goal [s] (runs that arrived)", "time to goal against α",
