@@ -142,7 +142,8 @@ def test_only_structural_settings_need_a_rebuild():
         "weight_terminal": 5.0, "weight_speed": 0.2, "weight_accel": 0.3, "weight_turn": 0.4,
         "goal_reach_m": 5.0, "max_obstacles": 4, "robot_accel_noise": 0.3, "robot_turn_noise": 0.2,
         "solver_max_iter": 50, "solver_time_fraction": 0.5, "solver_tolerance": 1e-6,
-        "infeasible_response": "least_violation",
+        "infeasible_response": "least_violation", "solver": "ipopt", "qp_solver": "qpoases", "qp_iterations": 3,
+        "allocation_passes": 1, "static_planes": 2,
     }
     assert sorted(alternatives) == sorted(spec.name for spec in PLANNER_SPECS)
     for spec in PLANNER_SPECS:

@@ -48,7 +48,7 @@ def test_numpy_integer_counts_are_accepted():
 
 
 def test_modes_are_the_documented_ones():
-    assert ALLOCATION_MODES == ("joint", "per_constraint")
+    assert ALLOCATION_MODES == ("joint", "joint_uniform", "per_constraint")
 
 
 @pytest.mark.parametrize("total", [0.0, 0.5, 0.7, -0.01, math.nan, math.inf])
@@ -74,3 +74,31 @@ def test_invalid_counts_and_modes_are_rejected_naming_the_argument(kwargs, name)
     args.update(kwargs)
     with pytest.raises(ValueError, match=rf"^{name}="):
         per_constraint_risk(**args)
+
+
+def test_reallocation_moves_binding_pairs_to_the_target_quantile():
+    # Binding pairs change their back-off z = Φ⁻¹(1 − a) by z_charged − z_target (gain 1), with
+    # quantiles from scipy.stats.norm; the budget is shared equally among them.
+    from scipy.stats import norm
+
+    from riskbound.risk.allocation import MAX_PAIR_RISK, reallocate
+    risks = np.array([1e-3, 1e-3, 2e-3, 5e-4])
+    charges = np.array([1e-5, 3e-2, 1e-9, 1e-4])
+    binding = np.array([True, True, False, False])
+    budget = 0.02
+    updated = reallocate(risks, charges, binding, budget, floor=1e-4)
+    target = budget / 2
+    for i in (0, 1):
+        z = norm.isf(risks[i]) - (norm.isf(charges[i]) - norm.isf(target))
+        assert updated[i] == pytest.approx(min(max(norm.sf(z), 1e-4), MAX_PAIR_RISK), rel=1e-9)
+    assert updated[0] > risks[0]  # charged below its share: its ellipse shrinks
+    assert updated[1] < risks[1]  # charged above: its ellipse grows
+    # Slack pairs give back half of what they hold above their charge, not below the floor.
+    assert updated[2] == pytest.approx(0.5 * (2e-3 + 1e-9))
+    assert updated[3] == pytest.approx(max(1e-4, 0.5 * (5e-4 + 1e-4)))
+
+
+def test_reallocation_with_no_budget_returns_binding_pairs_to_the_floor():
+    from riskbound.risk.allocation import reallocate
+    updated = reallocate(np.array([0.2, 0.01]), np.array([0.3, 0.02]), np.array([True, True]), -0.01, floor=1e-4)
+    np.testing.assert_array_equal(updated, [1e-4, 1e-4])

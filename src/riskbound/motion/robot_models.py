@@ -54,6 +54,7 @@ class RobotModel:
             "jacobians", [x, u, dt], [ca.jacobian(x_next, x), ca.jacobian(x_next, u)]
         )
         self._covariance_sequences = {}
+        self._horizon_functions = {}
 
     @property
     def state_dim(self):
@@ -112,6 +113,26 @@ class RobotModel:
                 f"covariance_sequence_{steps}", [X, U, dt, P0, sigma_a, sigma_w], [ca.vertcat(*blocks)]
             )
         return self._covariance_sequences[steps]
+
+    def horizon_function(self, steps):
+        """CasADi function (x₀, U (m×N), Δt) → (X (n×N+1), J (n·N × m·N)), generated once per horizon.
+
+        X is the rollout of U from x₀ and J = ∂vec(x₁ … x_N)/∂vec(U) its Jacobian, so that
+        x(U') ≈ x(U) + J (U' − U) near U: the condensed linearisation of the dynamics (exact for the
+        double integrator). One call replaces a per-step Python loop.
+        """
+        if steps not in self._horizon_functions:
+            n, m = self.state_dim, self.input_dim
+            x0 = ca.SX.sym("x0", n)
+            U = ca.SX.sym("U", m, steps)
+            dt = ca.SX.sym("dt")
+            states = [x0]
+            for k in range(steps):
+                states.append(self.discrete_step(states[-1], U[:, k], dt))
+            future = ca.vertcat(*states[1:])
+            self._horizon_functions[steps] = ca.Function(
+                f"horizon_{steps}", [x0, U, dt], [ca.horzcat(*states), ca.densify(ca.jacobian(future, ca.vec(U)))])
+        return self._horizon_functions[steps]
 
     @staticmethod
     def position(states):

@@ -108,3 +108,29 @@ def shift_indices(steps, elapsed_s, step_s):
     """
     shift = int(np.clip(round(elapsed_s / step_s), 0, steps))
     return (np.minimum(np.arange(steps + 1) + shift, steps), np.minimum(np.arange(steps) + shift, steps - 1))
+
+
+def goal_reference(settings, position, goal):
+    """The goal clipped to the robot's reach from `position` (the MPC's reference r)."""
+    s = settings
+    reach = s.goal_reach_m if s.goal_reach_m > 0.0 else s.max_speed_mps * s.horizon_steps * s.step_s
+    position = np.asarray(position, dtype=float)
+    offset = np.asarray(goal, dtype=float) - position
+    distance = np.linalg.norm(offset)
+    return position + offset * min(1.0, reach / distance) if distance > 0.0 else position.copy()
+
+
+def plan_cost(settings, states, inputs, reference):
+    """Cost of a plan (states (N+1, n), inputs (N, m)) under the MPC's objective, numerically."""
+    s = settings
+    states = np.asarray(states, dtype=float)
+    inputs = np.asarray(inputs, dtype=float)
+    position_error = np.sum((states[:, 0:2] - np.asarray(reference)[None, :]) ** 2, axis=1)
+    if s.robot_model == "unicycle":
+        speed_sq = states[:, 3] ** 2
+        input_cost = s.weight_accel * inputs[:, 0] ** 2 + s.weight_turn * inputs[:, 1] ** 2
+    else:
+        speed_sq = np.sum(states[:, 2:4] ** 2, axis=1)
+        input_cost = s.weight_accel * np.sum(inputs**2, axis=1)
+    stage = s.weight_goal * position_error[:-1] + s.weight_speed * speed_sq[:-1] + input_cost
+    return float(np.sum(stage) + s.weight_terminal * position_error[-1] + s.weight_speed * speed_sq[-1])

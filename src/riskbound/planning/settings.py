@@ -10,18 +10,21 @@ control path). All other settings enter the problem as numbers at the next solve
 from dataclasses import dataclass, replace
 
 from riskbound.motion.robot_models import ROBOT_MODELS
+from riskbound.planning.convex_subproblem import QP_SOLVERS
 from riskbound.risk.allocation import ALLOCATION_MODES
 from riskbound.settings_table import SettingSpec, validate_fields
 
 # What the planner does when no plan meets every obstacle constraint (see riskbound.planning.mpc).
 INFEASIBLE_RESPONSES = ("stop", "least_violation")
+PLANNER_SOLVERS = ("sequential_qp", "ipopt")
 
 
 PLANNER_SPECS = (
     SettingSpec("risk_level", 0.05, "total collision probability bound α (see risk_allocation)",
                 0.0, 0.5, low_open=True, high_open=True),
     SettingSpec("risk_allocation", "joint",
-                "joint: α over horizon × obstacles considered, split by Boole's inequality; "
+                "joint: α over horizon × reachable obstacles by Boole's inequality, risk moved to the "
+                "pairs that bind (iterative allocation); joint_uniform: the same bound, uniform split; "
                 "per_constraint: α for each obstacle and step", choices=ALLOCATION_MODES),
     SettingSpec("horizon_steps", 20, "number of MPC steps", 5, 60, rebuild=True),
     SettingSpec("step_s", 0.1, "duration of one MPC step [s]", 0.02, 1.0, rebuild=True),
@@ -47,8 +50,20 @@ PLANNER_SPECS = (
                 rebuild=True),
     SettingSpec("robot_accel_noise", 0.2, "robot process noise: std of acceleration [m/s²]", 0.0, 10.0),
     SettingSpec("robot_turn_noise", 0.1, "unicycle robot process noise: std of turn rate [rad/s]", 0.0, 10.0),
+    SettingSpec("solver", "sequential_qp",
+                "sequential_qp: convex QPs about the previous iterate, every iterate meets the obstacle "
+                "constraints, bounded iterations (default); ipopt: the interior-point reference on the full NLP",
+                choices=PLANNER_SOLVERS, rebuild=True),
+    SettingSpec("qp_solver", "daqp", "QP solver of the sequential_qp path (dense, condensed problem)",
+                choices=QP_SOLVERS, rebuild=True),
+    SettingSpec("qp_iterations", 6, "sequential_qp: convex subproblems per start at most (two starts per cycle)",
+                1, 50),
+    SettingSpec("allocation_passes", 3,
+                "joint: iterative risk allocation steps per cycle (each after the plan converged); "
+                "the split is carried to the next cycle", 1, 10),
+    SettingSpec("static_planes", 4, "static half-planes (walls, pillars) per step", 0, 16, rebuild=True),
     SettingSpec("solver_max_iter", 100, "IPOPT iteration cap", 3, 3000, rebuild=True),
-    SettingSpec("solver_time_fraction", 0.8, "IPOPT wall-time cap as a fraction of the control period",
+    SettingSpec("solver_time_fraction", 0.8, "solver wall-time cap as a fraction of the control period",
                 0.05, 1.0, rebuild=True),
     SettingSpec("solver_tolerance", 1e-4, "IPOPT convergence tolerance", 1e-10, 1e-1, rebuild=True),
     SettingSpec("infeasible_response", "stop",
@@ -85,6 +100,11 @@ class PlannerSettings:
     max_obstacles: int = 8
     robot_accel_noise: float = 0.2
     robot_turn_noise: float = 0.1
+    solver: str = "sequential_qp"
+    qp_solver: str = "daqp"
+    qp_iterations: int = 6
+    allocation_passes: int = 3
+    static_planes: int = 4
     solver_max_iter: int = 100
     solver_time_fraction: float = 0.8
     solver_tolerance: float = 1e-4
