@@ -6,6 +6,7 @@
                         [--set NAME=VALUE ...] [--workers N | --scheduler ADDRESS | --serial]
     riskbound sweep report --db FILE [--out DIR]
     riskbound sweep export --db FILE --csv FILE
+    riskbound sweep timing [--seeds N ...] [--risk-levels A ...] [--workers 1 2]
 
 `run` runs every combination not yet in the database (one ROS-free closed loop each, the engine
 of `riskbound bench crowdloop`) and writes a row per run as it finishes; run the same command again
@@ -17,7 +18,8 @@ Reaction strength is how strongly walkers avoid the robot [m²/s²]: 0 replays w
 it, 2.1 makes it as repulsive as a person (the social force model's V⁰).
 
 `report` writes DIR/report.md and PNG figures (outcome rates, minimum clearance and time to goal
-against α). `export` writes every run to a CSV file.
+against α). `export` writes every run to a CSV file. `timing` runs the same cells on fresh
+embedded clusters of 1 and 2 workers and prints throughput and scheduling overhead (nothing kept).
 
 Exit status: 0 done (run: every cell has a row), 1 some cells failed, 2 bad options or files,
 130 interrupted (the finished runs are kept).
@@ -59,6 +61,12 @@ def add_arguments(parser):
     report = commands.add_parser("report", help="write the operator's report from a results file")
     report.add_argument("--db", required=True, help="SQLite results file")
     report.add_argument("--out", default="out/sweep", help="directory for report.md and the figures")
+    timing = commands.add_parser("timing", help="throughput of 1 and 2 worker processes on the same cells")
+    timing.add_argument("--seeds", type=int, nargs="+", default=list(range(1, 11)), help="crowd seeds")
+    timing.add_argument("--risk-levels", type=float, nargs="+", default=[0.05, 0.2], help="α values")
+    timing.add_argument("--duration-s", type=float, default=30.0, help="crowd recording length [s]")
+    timing.add_argument("--max-cycles", type=int, default=0, help="planning cycles per crossing at most (0: no cap)")
+    timing.add_argument("--workers", type=int, nargs="+", default=[1, 2], help="worker counts to compare")
     export = commands.add_parser("export", help="write every run to CSV")
     export.add_argument("--db", required=True, help="SQLite results file")
     export.add_argument("--csv", required=True, help="CSV file to write")
@@ -108,15 +116,43 @@ def _check_settings(cells):
             load_settings(cell.params_file, cell.planner_overrides(), {})
 
 
+def _timing(args):
+    from riskbound.launching.xml_description import package_share
+    from riskbound.sweep.grid import build_grid
+    from riskbound.sweep.runner import time_cluster
+
+    root = package_share("riskbound")
+    try:
+        cells = build_grid(args.risk_levels, ["per_constraint"], [str(root / DEFAULT_SCENARIO)], args.seeds,
+                           [str(root / DEFAULT_PARAMS)], ["from_file"], [0.0], 2.0, args.duration_s, args.max_cycles)
+        if any(w < 1 for w in args.workers):
+            raise ValueError(f"--workers {args.workers}: each must be >= 1")
+    except ValueError as error:
+        return _error(error)
+    timings = [time_cluster(cells, workers) for workers in args.workers]
+    print(f"{len(cells)} cells (courtyard crossings, seeds {args.seeds[0]}..{args.seeds[-1]}, α {args.risk_levels})")
+    print(f"{'workers':>7} {'start-up s':>10} {'wall s':>7} {'cells/s':>8} {'mean cell s':>11} "
+          f"{'overhead/cell s':>15} {'overhead %':>10}")
+    for t in timings:
+        mean_cell = t.busy_s / t.cells
+        print(f"{t.workers:>7} {t.startup_s:>10.1f} {t.wall_s:>7.1f} {t.cells_per_s:>8.3f} {mean_cell:>11.2f} "
+              f"{t.overhead_per_cell_s:>15.3f} {100 * t.overhead_per_cell_s / mean_cell:>10.1f}")
+    for t in timings[1:]:
+        print(f"throughput {t.workers} workers / {timings[0].workers}: {t.cells_per_s / timings[0].cells_per_s:.2f}x")
+    return 0
+
+
 def run(args):
     logging.basicConfig(level=logging.WARNING, format="%(message)s")
     logging.getLogger("riskbound").setLevel(logging.INFO)
-    if args.action == "run" and not args.serial:
+    if args.action == "timing" or (args.action == "run" and not args.serial):
         import distributed  # noqa: F401 - sets its loggers' levels on import; quieten them afterwards
 
         logging.getLogger("distributed").setLevel(logging.WARNING)
     if args.action == "run":
         return _run(args)
+    if args.action == "timing":
+        return _timing(args)
     if not Path(args.db).is_file():
         return _error(f"--db {args.db}: no such file")
     if args.action == "report":

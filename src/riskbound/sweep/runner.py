@@ -202,3 +202,51 @@ def run_sweep(cells, db_path, workers=2, scheduler=None, serial=False, stream=No
         finally:
             bar.close()
     return SweepSummary(len(cells), skipped, bar.done, bar.failed, time.perf_counter() - started)
+
+
+@dataclass
+class ClusterTiming:
+    workers: int
+    cells: int
+    startup_s: float   # embedded cluster up with every worker registered
+    wall_s: float      # first submission to last result
+    busy_s: float      # sum of the cells' own wall times, measured on the workers
+
+    @property
+    def cells_per_s(self):
+        return self.cells / self.wall_s
+
+    @property
+    def overhead_per_cell_s(self):
+        """Worker time not spent in a cell, per cell: scheduling, transfer and idle ends."""
+        return (self.workers * self.wall_s - self.busy_s) / self.cells
+
+
+def _import_cell_modules():
+    import riskbound.bench.crowd_loop  # noqa: F401
+    import riskbound.crowd.simulate  # noqa: F401
+    import riskbound.planning.mpc  # noqa: F401
+    import riskbound.tracking.tracker  # noqa: F401
+
+
+def time_cluster(cells, workers):
+    """Run the cells on a fresh embedded cluster of `workers` processes, keeping nothing. Returns a
+    ClusterTiming. For the throughput figures: every cell runs whatever any store holds."""
+    from distributed import Client
+
+    started = time.perf_counter()
+    busy = []
+    with local_cluster(workers) as cluster, Client(cluster) as client:
+        client.wait_for_workers(workers)
+        client.run(_import_cell_modules)  # imports are the worker's start-up, not a cell's scheduling
+        ready = time.perf_counter()
+
+        def collected(cell, result):
+            busy.append(result[1].cell_s)
+
+        def failed(cell, message):
+            raise RuntimeError(f"cell {cell.key} failed while timing: {message}")
+
+        _tasks_on_client(cells, execute_cell, collected, failed, client, lambda cell: f"timing-{cell.key}")
+        finished = time.perf_counter()
+    return ClusterTiming(workers, len(cells), ready - started, finished - ready, float(sum(busy)))
