@@ -76,9 +76,24 @@ def _stop_cause(clocked, **cycle_kwargs):
     (PlannerStatus(level=LEVEL_WARN, status="time_or_iteration_cap", solve_ms=79.0), "solver_failure"),
     (PlannerStatus(level=LEVEL_ERROR, status="stale_odometry", solve_ms=None), "planner_error"),
     (PlannerStatus(level=LEVEL_STALE, status="", solve_ms=None), "planner_error"),
+    (PlannerStatus(level=LEVEL_ERROR, status="inactive", reason="planner inactive: no commands"), "planner_inactive"),
+    (PlannerStatus(level=LEVEL_OK, status="unconfigured"), "planner_inactive"),
+    (PlannerStatus(level=LEVEL_ERROR, status="finalized"), "planner_inactive"),
 ])
 def test_planner_failure_stops_in_the_same_cycle(status, cause):
     assert _stop_cause(Clocked(), status=status) == cause
+
+
+def test_an_inactive_planner_is_named_as_the_stop_cause_while_it_stays_inactive():
+    clocked = Clocked()
+    clocked.run_healthy()
+    inactive = PlannerStatus(level=LEVEL_ERROR, status="inactive", reason="planner inactive: no commands")
+    clocked.cycle(status=inactive)
+    # The deactivated planner sends nothing more: its last status keeps naming the cause.
+    verdict = clocked.cycle(send_status=False, send_command=False)
+    assert verdict.state == STOPPED
+    detail = {f.code: f.detail for f in verdict.faults}["planner_inactive"]
+    assert detail == "planner is inactive, it sends no commands: planner inactive: no commands"
 
 
 @pytest.mark.parametrize("command, cause", [

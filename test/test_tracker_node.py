@@ -88,7 +88,7 @@ def walkers_at(t):
 def tracker_process():
     log = tempfile.NamedTemporaryFile(mode="w+", suffix=".log", delete=False)
     process = subprocess.Popen(
-        [sys.executable, "-m", "riskbound.ros.tracker_node", "--ros-args",
+        [sys.executable, "-m", "riskbound.ros.tracker_node", "--ros-args", "-p", "activate_at_start:=true",
          "-p", f"forecast_steps:={FORECAST_STEPS}", "-p", "confirm_hits:=2", "-p", "confirm_window:=3"],
         stdout=log, stderr=subprocess.STDOUT, start_new_session=True, env=dict(os.environ))
     try:

@@ -13,6 +13,7 @@ SUBCOMMANDS = {
     "demo": ("riskbound.demo", "run the planner on a scripted plaza crossing and write a PNG and a summary"),
     "bench": ("riskbound.bench", "benchmarks: planner solve times and others; prints figures, writes JSON/PNG"),
     "tune": ("riskbound.ros.tune", "show a running node's settings, read one, or apply NAME=VALUE changes"),
+    "switch": ("riskbound.ros.switch", "show a managed node's lifecycle state or move it: configure, activate, ..."),
     "crowd": ("riskbound.crowd.cli", "generate a synthetic crowd bag from a scenario file"),
     "bagcheck": ("riskbound.crowd.bag_check", "read a crowd bag completely and summarise it (exit 2 if damaged)"),
     "review": ("riskbound.logs.review.cli", "find near-misses in a recorded bag, explain them, replan them"),

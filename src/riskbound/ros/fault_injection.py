@@ -259,8 +259,9 @@ class FaultGraph:
         self.processes = {
             "sim_robot": ManagedProcess("sim_robot", "riskbound.ros.sim_robot_node", _ros_args(sim_params), log_dir),
             "watchdog": ManagedProcess("watchdog", "riskbound.ros.watchdog_node",
-                                       _ros_args(self.watchdog_params), log_dir),
-            "planner": ManagedProcess("planner", "riskbound.ros.planner_node", _ros_args(planner_params), log_dir),
+                                       _ros_args(dict(self.watchdog_params, activate_at_start=True)), log_dir),
+            "planner": ManagedProcess("planner", "riskbound.ros.planner_node",
+                                      _ros_args(dict(planner_params, activate_at_start=True)), log_dir),
         }
         self.probe = None
 

@@ -1,12 +1,22 @@
-"""The shared `main()` of the nodes that simply spin: init → spin → shutdown.
+"""The shared `main()` of the nodes: init → (bring up a managed node) → spin → shutdown.
 
 Ctrl-C and SIGTERM (rclpy turns it into ExternalShutdownException) end the node cleanly with exit
-code 0, also when a message caught mid-shutdown makes rclpy raise; an invalid start-up configuration is logged as fatal with its reason and exits 1.
+code 0, also when a message caught mid-shutdown makes rclpy raise; so does the shutdown transition
+of a managed node (riskbound.ros.managed_node). An invalid start-up configuration of a plain node,
+or a start value outside a parameter's declared range, is logged as fatal with its reason and
+exits 1; a managed node refuses invalid settings at configure and stays up, unconfigured.
 """
+
+import time
 
 import rclpy
 from rclpy.exceptions import ParameterException
 from rclpy.executors import ExternalShutdownException
+
+from riskbound.ros.managed_node import ManagedNode
+
+# How long a finalized managed node keeps serving before its process ends [s].
+SHUTDOWN_GRACE_S = 0.5
 
 
 def spin_node(node_class, node_name, args=None):
@@ -16,7 +26,15 @@ def spin_node(node_class, node_name, args=None):
     code = 0
     try:
         node = node_class()
-        rclpy.spin(node)
+        if isinstance(node, ManagedNode):
+            node.bring_up()
+            rclpy.spin_until_future_complete(node, node.finished)
+            # The answer to the shutdown request must leave the process before it ends.
+            deadline = time.monotonic() + SHUTDOWN_GRACE_S
+            while time.monotonic() < deadline:
+                rclpy.spin_once(node, timeout_sec=0.05)
+        else:
+            rclpy.spin(node)
     except (KeyboardInterrupt, ExternalShutdownException):
         pass
     except (ValueError, ParameterException) as error:

@@ -1,15 +1,17 @@
 """Planner node: odometry, goal and obstacle forecast in; plan, reference, command and status out.
 
-Every cycle of the timer (control_rate_hz) checks its inputs, solves the chance-constrained MPC
-and publishes. Bad or stale input never produces a command: the cycle publishes an ERROR status
-saying why and a throttled warning instead.
+A managed node (riskbound.ros.managed_node): while active, every cycle of the timer
+(control_rate_hz) checks its inputs (riskbound.ros.planner_inputs), solves the chance-constrained
+MPC and publishes. Bad or stale input never produces a command: the cycle publishes an ERROR status
+saying why and a throttled warning instead. An unconfigured or inactive planner commands nothing
+and says so on planner_status.
 
 Parameters: every planner setting (riskbound.planning.settings.PLANNER_SPECS) plus the node's
-own NODE_SPECS below, all validated by SettingSpec.check in `_on_set_parameters`. Settings that
-change the optimisation problem's structure rebuild it on a background thread; the running
+own NODE_SPECS below, validated by SettingSpec.check at configure and on every change. Settings
+that change the optimisation problem's structure rebuild it on a background thread; the running
 problem keeps planning until the new one is swapped in at the start of a cycle.
 
-Run: python -m riskbound.ros.planner_node --ros-args --params-file config/drone.yaml
+Run: python -m riskbound.ros.planner_node --ros-args --params-file config/drone.yaml -p activate_at_start:=true
 """
 
 import sys
@@ -20,20 +22,18 @@ import numpy as np
 from diagnostic_msgs.msg import DiagnosticStatus
 from geometry_msgs.msg import PoseStamped, TwistStamped
 from nav_msgs.msg import Odometry, Path
-from rcl_interfaces.msg import SetParametersResult
-from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy, qos_profile_sensor_data
 from sensor_msgs.msg import PointCloud2
 from trajectory_msgs.msg import MultiDOFJointTrajectory
 
 from riskbound.forecast_schema import cloud_to_forecast
-from riskbound.motion.forecast import ObstacleForecast
 from riskbound.planning.mpc import ChanceConstrainedMPC
 from riskbound.planning.settings import PLANNER_SPECS, PlannerSettings
 from riskbound.ros import plan_messages
-from riskbound.ros.conversions import quaternion_to_yaw, stamp_to_seconds
-from riskbound.ros.setting_parameters import parameter_descriptor
+from riskbound.ros.conversions import stamp_to_seconds
+from riskbound.ros.managed_node import ACTIVE, INACTIVE, UNCONFIGURED, ManagedNode
 from riskbound.ros.node_main import spin_node
+from riskbound.ros.planner_inputs import InputProblem, forecast_on_grid, goal_position, is_out_of_order, robot_state
 from riskbound.ros.throttled_warnings import ThrottledWarnings
 from riskbound.settings_table import SettingSpec
 
@@ -52,45 +52,36 @@ NODE_SPECS = (
     SettingSpec("goal_tolerance_m", 0.2, "within this distance of the goal the command is zero [m]",
                 0.0, 100.0),
 )
-ALL_SPECS = {spec.name: spec for spec in PLANNER_SPECS + NODE_SPECS}
 PLANNER_NAMES = frozenset(spec.name for spec in PLANNER_SPECS)
 
 _LEVEL_OK, _LEVEL_WARN, _LEVEL_ERROR = DiagnosticStatus.OK, DiagnosticStatus.WARN, DiagnosticStatus.ERROR
+# Settings every planner_status names (the values in force, or those configure will check).
+STATUS_SETTINGS = ("risk_level", "risk_allocation", "robot_model", "horizon_steps", "step_s", "robot_radius_m")
 
 
-class InputProblem(Exception):
-    """An input the cycle must not plan from; `kind` is the status word, the message says why."""
+class PlannerNode(ManagedNode):
+    """Thin shell around ChanceConstrainedMPC: parameters, message checks and conversion, publishing.
 
-    def __init__(self, kind, message):
-        super().__init__(message)
-        self.kind = kind
-
-
-def _finite(*values):
-    return bool(np.all(np.isfinite(np.asarray(values, dtype=float))))
-
-
-class PlannerNode(Node):
-    """Thin shell around ChanceConstrainedMPC: parameters, message checks and conversion, publishing."""
+    Managed node (riskbound.ros.managed_node): configure validates the settings, builds the
+    problem and opens the topics; only while active does the cycle timer run and commands go out.
+    The status publisher lives as long as the node, so every change of state is announced on
+    planner_status (status unconfigured / inactive / finalized, level ERROR, with the reason): the
+    watchdog treats any of them as a stop.
+    """
 
     def __init__(self, **kwargs):
-        super().__init__(NODE_NAME, **kwargs)
-        for spec in ALL_SPECS.values():
-            self.declare_parameter(spec.name, spec.default, parameter_descriptor(spec))
-        values = {name: self.get_parameter(name).value for name in ALL_SPECS}
-        for name, value in values.items():
-            reason = ALL_SPECS[name].check(value)
-            if reason:
-                raise ValueError(reason)
-        self._planning_frame = values["planning_frame"]
-        if not self._planning_frame:
-            raise ValueError("planning_frame='' is not allowed: must name a frame")
-        self._node_values = {spec.name: values[spec.name] for spec in NODE_SPECS}
-        self._settings = PlannerSettings(**{name: values[name] for name in PLANNER_NAMES})
-        self._mpc = ChanceConstrainedMPC(self._settings)
-
+        super().__init__(NODE_NAME, PLANNER_SPECS + NODE_SPECS, **kwargs)
+        self._status_pub = self.create_publisher(DiagnosticStatus, "planner_status",
+                                                 QoSProfile(depth=10, reliability=ReliabilityPolicy.RELIABLE))
         self._build_lock = threading.Lock()
         self._build_generation = 0
+        self._warn = ThrottledWarnings(self.get_logger()).warn
+        self._inputs, self._outputs = [], []
+        self._timer = None
+        self._mpc = None
+        self._forget_inputs()
+
+    def _forget_inputs(self):
         self._built = None  # (generation, mpc) from the background thread, taken by the next cycle
         self._build_error = ""
         self._odom = None
@@ -99,9 +90,16 @@ class PlannerNode(Node):
         self._forecast = None  # (stamp_s, frame_id, ObstacleForecast) of the newest decodable cloud
         self._forecast_error = None  # why the newest cloud could not be decoded
         self._last_solve_s = None
-        self._warn = ThrottledWarnings(self.get_logger()).warn
 
-        self.add_on_set_parameters_callback(self._on_set_parameters)
+    # --- lifecycle -------------------------------------------------------------------------------
+
+    def _configure(self, values):
+        self._planning_frame = values["planning_frame"]
+        if not self._planning_frame:
+            raise ValueError("planning_frame='' is not allowed: must name a frame")
+        self._node_values = {spec.name: values[spec.name] for spec in NODE_SPECS}
+        self._settings = PlannerSettings(**{name: values[name] for name in PLANNER_NAMES})
+        self._mpc = ChanceConstrainedMPC(self._settings)
         reliable = QoSProfile(depth=10, reliability=ReliabilityPolicy.RELIABLE)
         latched = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                              durability=DurabilityPolicy.TRANSIENT_LOCAL)
@@ -109,37 +107,56 @@ class PlannerNode(Node):
         self._plan_pub = self.create_publisher(Path, "plan", reliable)
         self._reference_pub = self.create_publisher(MultiDOFJointTrajectory, "reference", reliable)
         self._cmd_pub = self.create_publisher(TwistStamped, "cmd_vel_plan", reliable)
-        self._status_pub = self.create_publisher(DiagnosticStatus, "planner_status", reliable)
-        self.create_subscription(Odometry, "odom", self._on_odom, qos_profile_sensor_data)
-        self.create_subscription(PoseStamped, "goal", self._on_goal, latched)
-        self.create_subscription(PointCloud2, "obstacle_forecast", self._on_forecast, forecast_qos)
-        self._timer = self.create_timer(1.0 / self._settings.control_rate_hz, self._on_timer)
+        self._outputs = [self._plan_pub, self._reference_pub, self._cmd_pub]
+        self._inputs = [self.create_subscription(Odometry, "odom", self._on_odom, qos_profile_sensor_data),
+                        self.create_subscription(PoseStamped, "goal", self._on_goal, latched),
+                        self.create_subscription(PointCloud2, "obstacle_forecast", self._on_forecast, forecast_qos)]
         self.get_logger().info(
             f"planning in '{self._planning_frame}' with {self._settings.robot_model}, "
             f"{self._settings.horizon_steps} steps of {self._settings.step_s} s at "
             f"{self._settings.control_rate_hz} Hz, risk_level={self._settings.risk_level} "
             f"({self._settings.risk_allocation})")
 
+    def _activate(self):
+        self._take_rebuilt()
+        self._mpc.reset()
+        self._last_solve_s = None
+        self._timer = self.create_timer(1.0 / self._mpc.settings.control_rate_hz, self._on_timer)
+
+    def _deactivate(self):
+        if self._timer is not None:
+            self.destroy_timer(self._timer)
+            self._timer = None
+
+    def _release(self):
+        self._deactivate()
+        for subscription in self._inputs:
+            self.destroy_subscription(subscription)
+        for publisher in self._outputs:
+            self.destroy_publisher(publisher)
+        self._inputs, self._outputs = [], []
+        with self._build_lock:
+            self._build_generation += 1  # a build still running is dropped when it ends
+        self._mpc = None
+        self._forget_inputs()
+
+    def _announce(self, state, reason):
+        if state == ACTIVE:
+            return  # the cycles speak for an active planner
+        why = {UNCONFIGURED: "not configured", INACTIVE: "inactive", "finalized": "shut down"}[state]
+        message = f"planner {why}: no commands" + (f" ({reason})" if reason else "")
+        self._publish_status(_LEVEL_ERROR, message, {"status": state, "reason": message})
+
     # --- parameters ------------------------------------------------------------------------------
 
-    def _on_set_parameters(self, parameters):
-        """The one place parameter changes are validated and applied."""
-        planner_changes, node_changes = {}, {}
-        for parameter in parameters:
-            spec = ALL_SPECS.get(parameter.name)
-            if spec is None:
-                continue  # rclpy's own parameters (use_sim_time...) are checked by rclpy
-            value = parameter.value
-            if isinstance(spec.default, float) and isinstance(value, int) and not isinstance(value, bool):
-                value = float(value)
-            reason = spec.check(value)
-            if reason:
-                return SetParametersResult(successful=False, reason=reason)
-            (planner_changes if spec.name in PLANNER_NAMES else node_changes)[spec.name] = value
+    def _apply_changes(self, changes):
+        """Apply checked parameter changes to a configured planner; the reason when refused."""
+        planner_changes = {name: value for name, value in changes.items() if name in PLANNER_NAMES}
+        node_changes = {name: value for name, value in changes.items() if name not in PLANNER_NAMES}
         try:
             settings = self._settings.with_changes(**planner_changes)
         except ValueError as error:
-            return SetParametersResult(successful=False, reason=str(error))
+            return str(error)
         rebuild = self._settings.needs_rebuild(settings)
         self._settings = settings
         self._node_values.update(node_changes)
@@ -147,11 +164,9 @@ class PlannerNode(Node):
             self._start_build(settings)
         else:
             self._mpc.settings = self._running_settings(self._mpc)
-        if planner_changes or node_changes:
-            self.get_logger().info("parameters changed: " + ", ".join(
-                f"{name}={value!r}" for name, value in {**planner_changes, **node_changes}.items())
-                + (" (rebuilding the problem)" if rebuild else ""))
-        return SetParametersResult(successful=True)
+        self.get_logger().info("parameters changed: " + ", ".join(
+            f"{name}={value!r}" for name, value in changes.items()) + (" (rebuilding the problem)" if rebuild else ""))
+        return None
 
     def _running_settings(self, mpc):
         """The latest settings with the structural ones of the problem `mpc` was built for."""
@@ -189,7 +204,7 @@ class PlannerNode(Node):
         old_rate = self._mpc.settings.control_rate_hz
         self._mpc = mpc
         self._last_solve_s = None
-        if mpc.settings.control_rate_hz != old_rate:
+        if mpc.settings.control_rate_hz != old_rate and self._timer is not None:
             self._timer.timer_period_ns = int(round(1e9 / mpc.settings.control_rate_hz))
         self.get_logger().info(f"planning problem rebuilt: {mpc.settings.robot_model}, "
                                f"{mpc.settings.horizon_steps} steps of {mpc.settings.step_s} s, "
@@ -201,13 +216,7 @@ class PlannerNode(Node):
     # --- subscriptions: keep the newest message; checks happen in the cycle so the status says why
 
     def _is_out_of_order(self, stamp_s, newest_s, timeout_s):
-        """True for a message older than the newest one kept, while that one is still fresh.
-
-        Once the newest is stale, older stamps are accepted again so that a source restarted with
-        an earlier clock (simulation reset, bag loop) is not locked out for good.
-        """
-        now_s = self.get_clock().now().nanoseconds * 1e-9
-        return newest_s is not None and stamp_s < newest_s and now_s - newest_s <= timeout_s
+        return is_out_of_order(stamp_s, newest_s, self.get_clock().now().nanoseconds * 1e-9, timeout_s)
 
     def _on_odom(self, msg):
         try:
@@ -249,6 +258,8 @@ class PlannerNode(Node):
     # --- the cycle -------------------------------------------------------------------------------
 
     def _on_timer(self):
+        if not self.is_active:
+            return
         try:
             try:
                 self._take_rebuilt()
@@ -263,9 +274,12 @@ class PlannerNode(Node):
 
     def _cycle(self):
         now_s = self.get_clock().now().nanoseconds * 1e-9
-        odom_stamp_s, x0, P0, yaw, body_frame = self._robot_state(now_s)
-        goal = self._goal_position()
-        forecast, forecast_note = self._forecast_on_grid(now_s, odom_stamp_s)
+        odom_stamp_s, x0, P0, yaw, body_frame = robot_state(self._odom, self._planning_frame, now_s,
+                                                            self._node_values["odom_timeout_s"], self._mpc.model)
+        goal = goal_position(self._goal, self._planning_frame)
+        forecast, forecast_note = forecast_on_grid(
+            self._forecast, self._forecast_error, self._planning_frame, now_s, odom_stamp_s, self._mpc.settings,
+            self._node_values["forecast_timeout_s"], self._node_values["require_forecast"])
         if self._goal_changed:
             self._mpc.reset()
             self._goal_changed = False
@@ -325,85 +339,6 @@ class PlannerNode(Node):
             self._warn("forecast_ignored", forecast_note)
         self._publish_status(level, message, values)
 
-    def _robot_state(self, now_s):
-        """(stamp_s, x0, P0, yaw, body_frame) from the newest odometry, or InputProblem."""
-        msg = self._odom
-        if msg is None:
-            raise InputProblem("no_odometry", "no odometry received yet on 'odom'")
-        if msg.header.frame_id != self._planning_frame:
-            raise InputProblem("wrong_frame", f"odometry frame_id '{msg.header.frame_id}' is not the "
-                                              f"planning_frame '{self._planning_frame}'")
-        if not msg.child_frame_id:
-            raise InputProblem("bad_odometry", "odometry child_frame_id is empty (it is the command's body frame)")
-        stamp_s = stamp_to_seconds(msg.header.stamp)
-        age_s = now_s - stamp_s
-        timeout_s = self._node_values["odom_timeout_s"]
-        if age_s > timeout_s:
-            raise InputProblem("stale_odometry", f"odometry is {age_s:.2f} s old (odom_timeout_s={timeout_s})")
-        if age_s < -timeout_s:
-            raise InputProblem("stale_odometry", f"odometry stamp is {-age_s:.2f} s in the future "
-                                                 f"(odom_timeout_s={timeout_s})")
-        pose, twist = msg.pose.pose, msg.twist.twist
-        position = (pose.position.x, pose.position.y)
-        body_velocity = (twist.linear.x, twist.linear.y)
-        if not _finite(*position, *body_velocity, twist.angular.z):
-            raise InputProblem("bad_odometry", "odometry position or velocity is NaN or Inf")
-        yaw = quaternion_to_yaw(pose.orientation)
-        if not np.isfinite(yaw):
-            raise InputProblem("bad_odometry", "odometry orientation is NaN, Inf or a zero quaternion")
-        pose_cov = np.asarray(msg.pose.covariance, dtype=float).reshape(6, 6)
-        twist_cov = np.asarray(msg.twist.covariance, dtype=float).reshape(6, 6)
-        if not (np.all(np.isfinite(pose_cov)) and np.all(np.isfinite(twist_cov))):
-            raise InputProblem("bad_odometry", "odometry covariance is NaN or Inf")
-        x0, P0 = self._mpc.model.state_from_odometry(position, yaw, body_velocity, pose_cov, twist_cov)
-        return stamp_s, x0, P0, yaw, msg.child_frame_id
-
-    def _goal_position(self):
-        msg = self._goal
-        if msg is None:
-            raise InputProblem("no_goal", "no goal received yet on 'goal'")
-        if msg.header.frame_id != self._planning_frame:
-            raise InputProblem("wrong_frame", f"goal frame_id '{msg.header.frame_id}' is not the "
-                                              f"planning_frame '{self._planning_frame}'")
-        goal = np.array([msg.pose.position.x, msg.pose.position.y], dtype=float)
-        if not np.all(np.isfinite(goal)):
-            raise InputProblem("bad_goal", "goal position is NaN or Inf")
-        return goal
-
-    def _forecast_on_grid(self, now_s, odom_stamp_s):
-        """The forecast resampled at the planner's grid, and a note when it was ignored (or InputProblem).
-
-        Planner step k is at odom_stamp + k·step_s, i.e. (odom_stamp − forecast_stamp) + k·step_s
-        after the forecast stamp.
-        """
-        settings = self._mpc.settings
-        grid_s = settings.step_s * np.arange(1, settings.horizon_steps + 1)
-        required = self._node_values["require_forecast"]
-        if self._forecast_error is not None:
-            raise InputProblem("bad_forecast", self._forecast_error)
-        if self._forecast is None:
-            if required:
-                raise InputProblem("no_forecast", "no obstacle_forecast received yet (require_forecast is true)")
-            return ObstacleForecast.empty(grid_s), ""
-        stamp_s, frame_id, forecast = self._forecast
-        if frame_id != self._planning_frame:
-            raise InputProblem("wrong_frame", f"obstacle_forecast frame_id '{frame_id}' is not the "
-                                              f"planning_frame '{self._planning_frame}'")
-        age_s = now_s - stamp_s
-        timeout_s = self._node_values["forecast_timeout_s"]
-        if abs(age_s) > timeout_s:
-            what = f"{age_s:.2f} s old" if age_s > 0 else f"stamped {-age_s:.2f} s in the future"
-            note = f"obstacle_forecast is {what} (forecast_timeout_s={timeout_s})"
-            if required:
-                raise InputProblem("stale_forecast", note)
-            return ObstacleForecast.empty(grid_s), note + ": planning without obstacles"
-        problems = forecast.problems()
-        if problems:
-            raise InputProblem("bad_forecast", "obstacle_forecast rejected: " + "; ".join(problems))
-        on_grid = forecast.resampled((odom_stamp_s - stamp_s) + grid_s)
-        return ObstacleForecast(on_grid.track_ids, grid_s, on_grid.positions, on_grid.headings,
-                                on_grid.covariances, on_grid.half_extents), ""
-
     # --- output ----------------------------------------------------------------------------------
 
     def _fail(self, kind, reason, warn=True):
@@ -412,29 +347,38 @@ class PlannerNode(Node):
             self._warn(kind, reason)
         self._publish_status(_LEVEL_ERROR, reason, {"status": kind, "reason": reason})
 
+    # --- planner_status: what every status carries is decided here, and only here ----------------
+
     def _publish_status(self, level, message, values):
-        settings = self._mpc.settings
-        with self._build_lock:
-            build_error = self._build_error
+        """Publish one planner_status: the cycle's (or the lifecycle announcement's) `values`,
+        completed by the fields every status carries."""
+        self._status_pub.publish(plan_messages.status_message(level, message, self.get_fully_qualified_name(),
+                                                              self._status_values(values)))
+
+    def _status_values(self, values):
         full = {
             "solve_ms": 0.0, "iterations": 0, "solver_status": "", "status": "", "cost": float("nan"),
             "obstacles_considered": 0, "obstacles_dropped": 0,
         }
         full.update(values)
+        if self._mpc is not None:
+            in_force = {name: getattr(self._mpc.settings, name) for name in STATUS_SETTINGS}
+        else:  # unconfigured: the values configure will check
+            in_force = {name: self.get_parameter(name).value for name in STATUS_SETTINGS}
         full.update({
-            "risk_level": settings.risk_level, "risk_allocation": settings.risk_allocation,
+            "risk_level": in_force["risk_level"], "risk_allocation": in_force["risk_allocation"],
             "risk_per_constraint": values.get("risk_per_constraint", float("nan")),
             "min_margin_m": values.get("min_margin_m", float("nan")),
-            "robot_model": settings.robot_model, "horizon_steps": settings.horizon_steps,
-            "step_s": settings.step_s, "robot_radius_m": settings.robot_radius_m,
-            "rebuild_pending": self._rebuild_pending(),
+            "robot_model": in_force["robot_model"], "horizon_steps": in_force["horizon_steps"],
+            "step_s": in_force["step_s"], "robot_radius_m": in_force["robot_radius_m"],
+            "rebuild_pending": self._mpc is not None and self._rebuild_pending(),
         })
-        if build_error:
-            full["rebuild_error"] = build_error
+        with self._build_lock:
+            if self._build_error:
+                full["rebuild_error"] = self._build_error
         if "reason" in full:
             full["reason"] = full.pop("reason")
-        self._status_pub.publish(plan_messages.status_message(level, message, self.get_fully_qualified_name(), full))
-
+        return full
 
 def main(args=None):
     """init → spin → shutdown; Ctrl-C and SIGTERM end it cleanly. Returns the exit code."""

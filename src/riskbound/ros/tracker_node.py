@@ -10,10 +10,12 @@ are rejected, late scans beyond the tolerance are dropped, all with a throttled 
 what was wrong; an empty scan ages the tracks; time running backwards restarts the tracker with a
 warning.
 
-Parameters: every tracker setting (riskbound.tracking.settings.TRACKER_SPECS) plus
-`planning_frame`, validated by SettingSpec.check in `_on_set_parameters`.
+A managed node (riskbound.ros.managed_node): detections are taken in only while it is active.
 
-Run: python -m riskbound.ros.tracker_node --ros-args --params-file config/ground_robot.yaml
+Parameters: every tracker setting (riskbound.tracking.settings.TRACKER_SPECS) plus
+`planning_frame`, validated by SettingSpec.check at configure and on every change.
+
+Run: python -m riskbound.ros.tracker_node --ros-args --params-file config/ground_robot.yaml -p activate_at_start:=true
 """
 
 import logging
@@ -23,8 +25,6 @@ import traceback
 import numpy as np
 from builtin_interfaces.msg import Time
 from geometry_msgs.msg import Point, PoseArray
-from rcl_interfaces.msg import SetParametersResult
-from rclpy.node import Node
 from rclpy.qos import QoSProfile, ReliabilityPolicy, qos_profile_sensor_data
 from sensor_msgs.msg import PointCloud2
 from std_msgs.msg import ColorRGBA, Header
@@ -32,7 +32,7 @@ from visualization_msgs.msg import Marker, MarkerArray
 
 from riskbound.ros.conversions import quaternion_to_yaw, seconds_to_stamp, stamp_to_seconds, yaw_to_quaternion
 from riskbound.ros.forecast_codec import forecast_to_cloud
-from riskbound.ros.setting_parameters import checked_changes, declare_settings
+from riskbound.ros.managed_node import ManagedNode
 from riskbound.ros.node_main import spin_node
 from riskbound.ros.throttled_warnings import ThrottledWarnings
 from riskbound.settings_table import SettingSpec
@@ -46,7 +46,6 @@ NODE_SPECS = (
                 "frame the detections must be in and the forecast is published in (REP-105); restart to change",
                 read_only=True),
 )
-ALL_SPECS = {spec.name: spec for spec in TRACKER_SPECS + NODE_SPECS}
 TRACKER_NAMES = frozenset(spec.name for spec in TRACKER_SPECS)
 # Probability mass inside the drawn covariance ellipses.
 MARKER_PROBABILITY = 0.95
@@ -73,61 +72,82 @@ class _NodeLogHandler(logging.Handler):
             self._logger.info(message)
 
 
-class TrackerNode(Node):
-    """Thin shell around MultiTargetTracker: parameters, message conversion, publishing."""
+class TrackerNode(ManagedNode):
+    """Thin shell around MultiTargetTracker: parameters, message conversion, publishing.
+
+    Managed node (riskbound.ros.managed_node): configure validates the settings, builds the
+    tracker and its publishers; only while active are detections taken in (and forecasts sent).
+    """
 
     def __init__(self, **kwargs):
-        super().__init__(NODE_NAME, **kwargs)
-        values = declare_settings(self, ALL_SPECS.values())
-        self._planning_frame = values["planning_frame"]
-        if not self._planning_frame:
-            raise ValueError("planning_frame='' is not allowed: must name a frame")
-        self._tracker = MultiTargetTracker(TrackerSettings(**{name: values[name] for name in TRACKER_NAMES}))
+        super().__init__(NODE_NAME, TRACKER_SPECS + NODE_SPECS, **kwargs)
         self._warn = ThrottledWarnings(self.get_logger()).warn
         self._core_log = logging.getLogger("riskbound.tracking")
         self._core_log_handler = _NodeLogHandler(self.get_logger())
         self._core_log.addHandler(self._core_log_handler)
+        self._tracker = None
+        self._outputs = []
+        self._detections = None
 
-        self.add_on_set_parameters_callback(self._on_set_parameters)
-        self._forecast_pub = self.create_publisher(
-            PointCloud2, "obstacle_forecast", QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE))
-        self._markers_pub = self.create_publisher(
-            MarkerArray, "tracks_markers", QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE))
-        self.create_subscription(PoseArray, "detections", self._on_detections, qos_profile_sensor_data)
+    def destroy_node(self):
+        self._core_log.removeHandler(self._core_log_handler)
+        return super().destroy_node()
+
+    # --- lifecycle -------------------------------------------------------------------------------
+
+    def _configure(self, values):
+        self._planning_frame = values["planning_frame"]
+        if not self._planning_frame:
+            raise ValueError("planning_frame='' is not allowed: must name a frame")
+        self._tracker = MultiTargetTracker(TrackerSettings(**{name: values[name] for name in TRACKER_NAMES}))
+        reliable = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE)
+        self._forecast_pub = self.create_publisher(PointCloud2, "obstacle_forecast", reliable)
+        self._markers_pub = self.create_publisher(MarkerArray, "tracks_markers", reliable)
+        self._outputs = [self._forecast_pub, self._markers_pub]
         s = self._tracker.settings
         self.get_logger().info(
             f"tracking in '{self._planning_frame}' with {s.motion_model}, gate {s.gate_probability}, "
             f"confirm {s.confirm_hits} of {s.confirm_window}, forecast {s.forecast_steps} steps of "
             f"{s.forecast_step_s} s")
 
-    def destroy_node(self):
-        self._core_log.removeHandler(self._core_log_handler)
-        return super().destroy_node()
+    def _activate(self):
+        self._detections = self.create_subscription(PoseArray, "detections", self._on_detections,
+                                                    qos_profile_sensor_data)
+
+    def _deactivate(self):
+        if self._detections is not None:
+            self.destroy_subscription(self._detections)
+            self._detections = None
+
+    def _release(self):
+        self._deactivate()
+        for publisher in self._outputs:
+            self.destroy_publisher(publisher)
+        self._outputs = []
+        self._tracker = None
 
     # --- parameters ------------------------------------------------------------------------------
 
-    def _on_set_parameters(self, parameters):
-        """The one place parameter changes are validated and applied."""
-        ours = [p for p in parameters if p.name in ALL_SPECS]
-        changes, reason = checked_changes(ALL_SPECS, ours, NODE_NAME)
-        if reason:
-            return SetParametersResult(successful=False, reason=reason)
+    def _apply_changes(self, changes):
+        """Apply checked parameter changes to a configured tracker; the reason when refused."""
         tracker_changes = {name: value for name, value in changes.items() if name in TRACKER_NAMES}
         try:
             settings = self._tracker.settings.with_changes(**tracker_changes)
         except ValueError as error:
-            return SetParametersResult(successful=False, reason=str(error))
+            return str(error)
         restart = self._tracker.settings.needs_reset(settings)
         self._tracker.configure(settings)
         if tracker_changes:
             self.get_logger().info("parameters changed: " + ", ".join(
                 f"{name}={value!r}" for name, value in tracker_changes.items())
                 + (" (every track restarted)" if restart else ""))
-        return SetParametersResult(successful=True)
+        return None
 
     # --- scans -----------------------------------------------------------------------------------
 
     def _on_detections(self, msg):
+        if not self.is_active:
+            return
         try:
             self._process(msg)
         except Exception:  # noqa: BLE001 - a callback must never stop the executor

@@ -18,7 +18,11 @@ Inputs: cmd_vel_plan (TwistStamped), planner_status (DiagnosticStatus: level, st
 reason), odom (Odometry, sensor-data QoS; header stamp), obstacle_forecast (PointCloud2; header
 stamp only, the body is the planner's business).
 
-Run: python -m riskbound.ros.watchdog_node --ros-args --params-file config/drone.yaml
+A managed node (riskbound.ros.managed_node): it gates only while active. A planner that is
+unconfigured, inactive or shut down says so on planner_status (status unconfigured / inactive /
+finalized): a stopping fault, `planner_inactive` (riskbound.supervision.health).
+
+Run: python -m riskbound.ros.watchdog_node --ros-args --params-file config/drone.yaml -p activate_at_start:=true
 """
 
 import logging
@@ -29,18 +33,16 @@ import traceback
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
 from geometry_msgs.msg import TwistStamped
 from nav_msgs.msg import Odometry
-from rcl_interfaces.msg import SetParametersResult
-from rclpy.node import Node
 from rclpy.qos import QoSProfile, ReliabilityPolicy, qos_profile_sensor_data
 from sensor_msgs.msg import PointCloud2
 
 from riskbound.motion.robot_models import VelocityCommand
 from riskbound.ros.conversions import stamp_to_seconds
-from riskbound.ros.setting_parameters import changed_settings, declare_settings
+from riskbound.ros.managed_node import INACTIVE, ManagedNode
 from riskbound.ros.node_main import spin_node
 from riskbound.ros.throttled_warnings import ThrottledWarnings
 from riskbound.supervision.health import DEGRADED, HEALTHY, STOPPED, HealthMonitor, planner_status_from_values
-from riskbound.supervision.settings import SPECS_BY_NAME, WATCHDOG_SPECS, WatchdogSettings
+from riskbound.supervision.settings import WATCHDOG_SPECS, WatchdogSettings
 from riskbound.supervision.stop import ZERO_VELOCITY, stop_command
 
 NODE_NAME = "watchdog"
@@ -72,42 +74,25 @@ class _ToNodeLogger(logging.Handler):
             self._node_logger.info(record.getMessage())
 
 
-class WatchdogNode(Node):
-    """Thin shell around HealthMonitor: parameters, message conversion, the control timer, publishing."""
+class WatchdogNode(ManagedNode):
+    """Thin shell around HealthMonitor: parameters, message conversion, the control timer, publishing.
+
+    Managed node (riskbound.ros.managed_node): configure validates the settings and opens the
+    outputs; activate starts a fresh HealthMonitor (stopped until its inputs are fresh), the
+    subscriptions and the timers; deactivate stops them after one last zero-velocity command, so
+    the robot is not left with a moving command when nothing gates it any more.
+    """
 
     def __init__(self, **kwargs):
-        super().__init__(NODE_NAME, **kwargs)
-        self._settings = WatchdogSettings(**declare_settings(self, WATCHDOG_SPECS))
+        super().__init__(NODE_NAME, WATCHDOG_SPECS, **kwargs)
         self._log_handler = _ToNodeLogger(self.get_logger())
         core_logger = logging.getLogger("riskbound.supervision")
         core_logger.setLevel(logging.INFO)
         core_logger.addHandler(self._log_handler)
-        self._monitor = HealthMonitor(self._settings, start_s=self._now_s())
-        self._published = None  # the last command sent to the robot (a ramp continues from it)
-        self._published_s = None
-        self._forwarded = None  # a planned command sent on arrival since the last control cycle
-        self._body_frame = ""  # the planner's command frame, else odometry's child frame
-        self._last_stamps = {}
         self._warn = ThrottledWarnings(self.get_logger()).warn
-        self.add_on_set_parameters_callback(self._on_set_parameters)
-        reliable = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE)
-        self._cmd_pub = self.create_publisher(TwistStamped, "cmd_vel", reliable)
-        self._diagnostics_pub = self.create_publisher(DiagnosticArray, "/diagnostics", 10)
-        self.create_subscription(TwistStamped, "cmd_vel_plan", self._on_command,
-                                 QoSProfile(depth=10, reliability=ReliabilityPolicy.RELIABLE))
-        self.create_subscription(DiagnosticStatus, "planner_status", self._on_status,
-                                 QoSProfile(depth=10, reliability=ReliabilityPolicy.RELIABLE))
-        self.create_subscription(Odometry, "odom", self._on_odometry, qos_profile_sensor_data)
-        self.create_subscription(PointCloud2, "obstacle_forecast", self._on_forecast, reliable)
-        self.create_timer(self._settings.control_period_s, self._on_control)
-        self.create_timer(self._settings.check_period_s, self._on_check)
-        self.create_timer(1.0 / self._settings.diagnostics_rate_hz, self._publish_diagnostics)
-        s = self._settings
-        self.get_logger().info(
-            f"gating cmd_vel_plan → cmd_vel at {s.control_rate_hz} Hz; stops after status/command "
-            f"{s.status_timeout_s}/{s.command_timeout_s} s, odom {s.odom_timeout_s} s, forecast "
-            f"{s.forecast_timeout_s} s{'' if s.require_forecast else ' (not required)'}, deadline "
-            f"{s.deadline_ms} ms; stop_mode {s.stop_mode}; recovery after {s.recovery_cycles} cycles")
+        self._settings = None
+        self._monitor = None
+        self._outputs, self._inputs, self._timers = [], [], []
 
     def _now_s(self):
         return self.get_clock().now().nanoseconds * 1e-9
@@ -116,18 +101,81 @@ class WatchdogNode(Node):
         logging.getLogger("riskbound.supervision").removeHandler(self._log_handler)
         super().destroy_node()
 
+    # --- lifecycle -------------------------------------------------------------------------------
+
+    def _configure(self, values):
+        self._settings = WatchdogSettings(**values)
+        self._cmd_pub = self.create_publisher(TwistStamped, "cmd_vel",
+                                              QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE))
+        self._diagnostics_pub = self.create_publisher(DiagnosticArray, "/diagnostics", 10)
+        self._outputs = [self._cmd_pub, self._diagnostics_pub]
+        s = self._settings
+        self.get_logger().info(
+            f"gating cmd_vel_plan → cmd_vel at {s.control_rate_hz} Hz; stops after status/command "
+            f"{s.status_timeout_s}/{s.command_timeout_s} s, odom {s.odom_timeout_s} s, forecast "
+            f"{s.forecast_timeout_s} s{'' if s.require_forecast else ' (not required)'}, deadline "
+            f"{s.deadline_ms} ms; stop_mode {s.stop_mode}; recovery after {s.recovery_cycles} cycles")
+
+    def _activate(self):
+        s = self._settings
+        self._monitor = HealthMonitor(s, start_s=self._now_s())
+        self._published = None  # the last command sent to the robot (a ramp continues from it)
+        self._published_s = None
+        self._forwarded = None  # a planned command sent on arrival since the last control cycle
+        self._body_frame = ""  # the planner's command frame, else odometry's child frame
+        self._last_stamps = {}
+        reliable = QoSProfile(depth=10, reliability=ReliabilityPolicy.RELIABLE)
+        self._inputs = [
+            self.create_subscription(TwistStamped, "cmd_vel_plan", self._on_command, reliable),
+            self.create_subscription(DiagnosticStatus, "planner_status", self._on_status, reliable),
+            self.create_subscription(Odometry, "odom", self._on_odometry, qos_profile_sensor_data),
+            self.create_subscription(PointCloud2, "obstacle_forecast", self._on_forecast,
+                                     QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE))]
+        self._timers = [self.create_timer(s.control_period_s, self._on_control),
+                        self.create_timer(s.check_period_s, self._on_check),
+                        self.create_timer(1.0 / s.diagnostics_rate_hz, self._publish_diagnostics)]
+
+    def _deactivate(self):
+        for timer in self._timers:
+            self.destroy_timer(timer)
+        for subscription in self._inputs:
+            self.destroy_subscription(subscription)
+        self._timers, self._inputs = [], []
+        if self._monitor is not None:
+            self._publish_command(self.get_clock().now(), ZERO_VELOCITY)
+            self._monitor = None
+
+    def _release(self):
+        self._deactivate()
+        for publisher in self._outputs:
+            self.destroy_publisher(publisher)
+        self._outputs = []
+        self._settings = None
+
+    def _announce(self, state, reason):
+        if state != INACTIVE or not self._outputs:
+            return
+        status = DiagnosticStatus(level=DiagnosticStatus.ERROR, name=DIAGNOSTIC_NAME,
+                                  hardware_id=self.get_fully_qualified_name(),
+                                  message="inactive: nothing gated, the last cmd_vel sent was zero velocity",
+                                  values=[KeyValue(key="state", value=INACTIVE)])
+        array = DiagnosticArray(status=[status])
+        array.header.stamp = self.get_clock().now().to_msg()
+        self._diagnostics_pub.publish(array)
+
     # --- parameters ------------------------------------------------------------------------------
 
-    def _on_set_parameters(self, parameters):
-        """The one place parameter changes are validated and applied."""
-        settings, changes, reason = changed_settings(self._settings, SPECS_BY_NAME, parameters, NODE_NAME)
-        if reason:
-            return SetParametersResult(successful=False, reason=reason)
+    def _apply_changes(self, changes):
+        """Apply checked parameter changes to a configured watchdog; the reason when refused."""
+        try:
+            settings = self._settings.with_changes(**changes)
+        except ValueError as error:
+            return str(error)
         self._settings = settings
-        self._monitor.update_settings(settings)
-        if changes:
-            self.get_logger().info("parameters changed: " + ", ".join(f"{k}={v!r}" for k, v in changes.items()))
-        return SetParametersResult(successful=True)
+        if self._monitor is not None:
+            self._monitor.update_settings(settings)
+        self.get_logger().info("parameters changed: " + ", ".join(f"{k}={v!r}" for k, v in changes.items()))
+        return None
 
     # --- inputs: record and return; the decision is taken in the control cycle --------------------
 

@@ -5,7 +5,11 @@ command may go to the robot. The monitor looks at what the node recorded since t
 and finds the faults present now:
 
     stopping faults   solver_failure        the planner says its solve failed (status infeasible,
-                                            solver_failed or time_or_iteration_cap, at any level)
+                                            no_plan_found, solver_failed or time_or_iteration_cap,
+                                            at any level)
+                      planner_inactive      the planner says it is not running its cycle: status
+                                            unconfigured, inactive or finalized (a managed node
+                                            outside its active state commands nothing)
                       planner_error         the planner reports level ERROR or STALE for another
                                             reason (stale or bad input, no goal, ...)
                       deadline_misses       `deadline_misses_to_stop` consecutive solves over the deadline
@@ -55,10 +59,12 @@ HEALTHY, DEGRADED, STOPPED = "healthy", "degraded", "stopped"
 LEVEL_OK, LEVEL_WARN, LEVEL_ERROR, LEVEL_STALE = 0, 1, 2, 3
 
 # Planner `status` values that mean no usable plan (riskbound.planning.mpc.PlanResult.status).
-FAILED_PLAN_STATUSES = frozenset({"infeasible", "solver_failed", "time_or_iteration_cap"})
+FAILED_PLAN_STATUSES = frozenset({"infeasible", "no_plan_found", "solver_failed", "time_or_iteration_cap"})
 # Statuses of a cycle that ran the solver; others (no goal, goal reached, stale input, ...) carry
 # no solve time worth counting. A status without a `status` key is taken as a solve.
 SOLVE_STATUSES = FAILED_PLAN_STATUSES | {"solved", "feasible_not_converged", "least_violation", ""}
+# Planner `status` values of a managed planner outside its active state (riskbound.ros.managed_node).
+INACTIVE_PLANNER_STATUSES = frozenset({"unconfigured", "inactive", "finalized"})
 
 # Absolute slack on the speed and turn-rate limits: the solver accepts constraint violations up to
 # 1e-4 (IPOPT's constr_viol_tol), which must not stop the robot.
@@ -222,7 +228,10 @@ class HealthMonitor:
         if status is None:
             return []
         found = []
-        if status.level >= LEVEL_ERROR or status.status in FAILED_PLAN_STATUSES:
+        if status.status in INACTIVE_PLANNER_STATUSES:
+            found.append(Fault("planner_inactive", f"planner is {status.status}, it sends no commands"
+                               + (f": {status.reason}" if status.reason else ""), True))
+        elif status.level >= LEVEL_ERROR or status.status in FAILED_PLAN_STATUSES:
             why = f": {status.reason}" if status.reason else ""
             code = "solver_failure" if status.status in FAILED_PLAN_STATUSES else "planner_error"
             found.append(Fault(code, f"planner reports status {status.status or '?'} at level {status.level}{why}",
