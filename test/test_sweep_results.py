@@ -56,6 +56,7 @@ def test_grid_has_every_combination_once_with_stable_keys(tmp_path):
     assert len(cells) == 3 * 2 * 2 * 2
     assert len({cell.key for cell in cells}) == len(cells)
     assert [cell.key for cell in cells] == [cell.key for cell in _cells()]
+    assert len(_cells(seeds=[1, 2, 1])) == len(cells)  # a repeated value is no new cell
     # An edited scenario file is a different cell: old results are not taken for new ones.
     edited = tmp_path / "scenario.yaml"
     edited.write_text(Path(SCENARIO).read_text() + "\n# edited\n")

@@ -90,10 +90,11 @@ def build_grid(risk_levels, allocations, scenarios, seeds, params_files, robot_m
         digest = hashlib.sha256(_file_bytes(params_file, "parameter file"))
         digest.update(_file_bytes(scenario, "scenario"))
         digests[params_file, scenario] = digest.hexdigest()
-    cells = []
+    cells = {}  # key → cell: a value given twice makes no second cell
     for params_file, robot_model, scenario, allocation, risk_level, reaction, seed in itertools.product(
             params_files, robot_models, scenarios, allocations, risk_levels, reaction_strengths, seeds):
-        cells.append(Cell(float(risk_level), allocation, str(scenario), int(seed), str(params_file), robot_model,
-                          float(reaction), float(start_s), float(duration_s), int(max_cycles), overrides_text,
-                          digests[params_file, scenario]))
-    return cells
+        cell = Cell(float(risk_level), allocation, str(scenario), int(seed), str(params_file), robot_model,
+                    float(reaction), float(start_s), float(duration_s), int(max_cycles), overrides_text,
+                    digests[params_file, scenario])
+        cells.setdefault(cell.key, cell)
+    return list(cells.values())

@@ -175,11 +175,7 @@ def run_sweep(cells, db_path, workers=2, scheduler=None, serial=False, stream=No
     version = code_version()
     with ResultStore(db_path) as store:
         present = store.done_keys()
-        todo, seen = [], set()
-        for cell in cells:
-            if cell.key not in present and cell.key not in seen:
-                todo.append(cell)
-                seen.add(cell.key)
+        todo = [cell for cell in cells if cell.key not in present]
         skipped = len(cells) - len(todo)
         if skipped:
             LOG.info("%d of %d cells are already in %s: not run again", skipped, len(cells), db_path)
