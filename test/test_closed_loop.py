@@ -12,8 +12,8 @@ stack believed:
   previous one overran is a missed cycle);
 - the recorded bag is readable and holds the run's topics;
 - zero ground-truth collisions: at every replayed truth frame the robot's disc (the planner's
-  robot_radius_m, position interpolated from odometry) and every walker's disc (the bag's
-  walker_radius_m) do not overlap.
+  robot_radius_m, position interpolated from odometry) and every walker's box (the tracker's
+  footprint, oriented with the walker's heading; riskbound.clearance) do not overlap.
 
 The replayed walkers cannot react to the robot, so the parameters use the least_violation
 infeasible response (see config/drone_closed_loop.yaml): a stop in a walker's path is a collision.

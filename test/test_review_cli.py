@@ -14,7 +14,7 @@ import pytest
 
 from riskbound.cli import main
 from riskbound.logs.review import synthetic
-from riskbound.logs.review.report import FIGURES
+from riskbound.logs.review.figures import FIGURES
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
@@ -55,7 +55,7 @@ def test_full_review_with_replanning(close_pass_bag, tmp_path):
     assert "planner_failure" in report
 
     document = json.loads((out / "events.json").read_text())
-    assert document["schema"] == "riskbound.review/1"
+    assert document["schema"] == "riskbound.review/2"
     (event,) = document["events"]
     for key in ("t_start", "t_end", "t_min", "min_clearance_m", "obstacle_id", "collision"):
         assert key in event
@@ -70,16 +70,24 @@ def test_full_review_with_replanning(close_pass_bag, tmp_path):
     assert replan["as_recorded"]["risk_level"] == pytest.approx(0.05)   # from planner_status
     assert replan["replanned"]["risk_level"] == pytest.approx(0.01)     # the override
     assert replan["overrides"] == {"max_speed_mps": 1.0, "risk_level": 0.01}
-    for key in ("as_recorded", "replanned", "recorded_plan"):
-        positions = np.asarray(replan[key]["positions"])
-        assert positions.shape[1] == 2 and len(positions) >= 2
-    # Both re-solves start at the recorded state at onset.
-    np.testing.assert_allclose(replan["as_recorded"]["positions"][0], replan["replanned"]["positions"][0])
+    positions = np.asarray(replan["recorded_plan"]["positions"])
+    assert positions.shape[1] == 2 and len(positions) >= 2
+    for key in ("as_recorded", "replanned"):
+        plan = replan[key]
+        if plan["success"]:
+            positions = np.asarray(plan["positions"])
+            assert positions.shape[1] == 2 and len(positions) >= 2 and plan["clearance_vs_actual_m"] is not None
+        else:   # no usable plan: nothing drawn or scored as if it were one
+            assert plan["positions"] == [] and plan["clearance_vs_actual_m"] is None
+            assert f"{plan['status']} in" in report and "no usable plan" in report
+    if replan["as_recorded"]["success"] and replan["replanned"]["success"]:
+        # Both re-solves start at the recorded state at onset.
+        np.testing.assert_allclose(replan["as_recorded"]["positions"][0], replan["replanned"]["positions"][0])
 
 
 def test_invalid_options_are_refused_before_reading(close_pass_bag, tmp_path, capsys):
     assert main(["review", str(close_pass_bag), "--out", str(tmp_path / "x"), "--replan-risk", "0.7"]) == 2
-    assert "risk_level=0.7 is out of range" in capsys.readouterr().err
+    assert "--replan-risk 0.7: out of range, must be in (0.0, 0.5)" in capsys.readouterr().err
     assert main(["review", str(close_pass_bag), "--replan-param", "horizon_steps=many"]) == 2
     assert "horizon_steps='many': expected an integer" in capsys.readouterr().err
     assert main(["review", str(close_pass_bag), "--clearance-m", "-1"]) == 2

@@ -5,7 +5,9 @@ same session (it sorts before this file), its bag is reviewed as it is; run alon
 the closed loop itself with the same settings. The review must read the real recording without
 error, find the walkers from the ground truth, and list every figure in the report: the overview
 map, the clearance over time, the solve-time histogram and timeline, and one snapshot per event.
-A 1.5 m threshold makes sure the courtyard crossing yields events to draw.
+A 1.5 m threshold makes sure the courtyard crossing yields events to draw. The closed loop's own
+summary and the review it wrote of the same recording must agree on the closest approach to 1 mm
+(one clearance definition, riskbound.clearance).
 """
 
 import json
@@ -18,7 +20,7 @@ from test_closed_loop import REPLAY_SPEED, TIME_LIMIT_S  # the recording test's 
 
 from riskbound.cli import main
 from riskbound.closed_loop import DEFAULT_PARAMS, run_closed_loop
-from riskbound.logs.review.report import FIGURES
+from riskbound.logs.review.figures import FIGURES
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 REPO = Path(__file__).resolve().parents[1]
@@ -60,3 +62,16 @@ def test_review_of_the_closed_loop_bag(recorded_bag, tmp_path):
         assert event["obstacle_id"] is not None
         assert event["min_clearance_m"] < 1.5 and event["t_start"] <= event["t_min"] <= event["t_end"]
         assert event["replan"]["available"], event["replan"]
+
+
+def test_summary_and_review_of_one_run_agree_on_the_closest_approach(recorded_bag, tmp_path):
+    # The review as `riskbound closedloop` runs it: with the summary's footprints.
+    summary = json.loads((recorded_bag.parent / "summary.json").read_text())
+    out = tmp_path / "review"
+    code = main(["review", str(recorded_bag), "--out", str(out), "--quiet", "--robot-radius-m",
+                 str(summary["robot_radius_m"]), "--obstacle-half-extents-m",
+                 *map(str, summary["walker_half_extents_m"])])
+    assert code == 0
+    closest = json.loads((out / "events.json").read_text())["closest_approach"]
+    assert abs(summary["min_clearance_m"] - closest["clearance_m"]) <= 1e-3, (summary["min_clearance_m"], closest)
+    assert summary["min_clearance_walker_id"] == closest["obstacle_id"]

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 from riskbound.logs.review import events as event_search
-from riskbound.logs.review import load as review_load
+from riskbound.logs.review import obstacle_rows
 from riskbound.logs.review import synthetic
 from riskbound.logs.review.cli import Progress, add_arguments, review
 from riskbound.logs.review.forecast_check import check_event
@@ -222,7 +222,7 @@ def test_forecast_rows_read_from_bytes_match_the_codec(tmp_path, monkeypatch):
     np.testing.assert_array_equal(got, np.array(rows))
     assert len(rows) == 2 * len(run.frame_times_s)
     # Clouds of another layout go through the codec: the same rows.
-    monkeypatch.setattr(review_load, "_first_step", lambda raw: None)
+    monkeypatch.setattr(obstacle_rows, "_first_step", lambda raw: None)
     obs = load_review_data(path).obstacles
     np.testing.assert_array_equal(np.column_stack([obs.ids, obs.times_s, obs.positions, obs.headings,
                                                    obs.half_extents]), np.array(rows))

@@ -10,7 +10,8 @@ from std_msgs.msg import Header
 
 from riskbound.logs.bag_io import TYPESTORE
 from riskbound.logs.review import cdr
-from riskbound.logs.review.footprint import disc_box_clearance, time_to_contact
+from riskbound.clearance import disc_box_clearance
+from riskbound.logs.review.footprint import time_to_contact
 from riskbound.logs.review.forecast_check import chi_square_2dof_quantile, gaussian_check
 from riskbound.logs.review.synthetic import forecast_cloud_cdr
 from riskbound.motion.forecast import ObstacleForecast

@@ -156,8 +156,10 @@ def run_closed_loop(out_dir, bag=None, params_file=None, speed=DEFAULT_SPEED, ti
     params_file = Path(params_file).resolve() if params_file is not None else _package_root() / DEFAULT_PARAMS
     if not speed > 0.0:
         raise ValueError(f"speed={speed!r} must be > 0")
-    planner = read_parameter_file(params_file).get("planner", {})
+    parameters = read_parameter_file(params_file)
+    planner = parameters.get("planner", {})
     robot_radius_m = float(planner.get("robot_radius_m", 0.3))
+    walker_half_extents_m = _walker_footprint(parameters.get("tracker", {}))
     control_rate_hz = float(planner.get("control_rate_hz", 10.0))
     metadata = read_custom_data(bag)
     if "robot_start" not in metadata or "robot_goal" not in metadata:
@@ -202,23 +204,35 @@ def run_closed_loop(out_dir, bag=None, params_file=None, speed=DEFAULT_SPEED, ti
             _stop_leftovers(launch_log, log)
     log(f"launch ended with exit code {code} after {time.monotonic() - started:.0f} s; analysing {recorded}")
 
-    summary, series = summarise_run(recorded, bag, goal, robot_radius_m, control_rate_hz, goal_tolerance_m)
+    summary, series = summarise_run(recorded, bag, goal, robot_radius_m, control_rate_hz, goal_tolerance_m,
+                                    walker_half_extents_m)
     text = summary_text(summary)
     files = [out_dir / "summary.txt", out_dir / "summary.json"]
     files[0].write_text(text + "\n", encoding="utf-8")
     files[1].write_text(summary.to_json() + "\n", encoding="utf-8")
     files += plot_run(summary, series, out_dir)
     if review:
-        files.append(_review(recorded, out_dir / "review", robot_radius_m, log))
+        files.append(_review(recorded, out_dir / "review", robot_radius_m, walker_half_extents_m, log))
     return ClosedLoopResult(summary, code, time.monotonic() - started, out_dir, files + [recorded, logs])
 
 
-def _review(recorded, out, robot_radius_m, log):
-    """`riskbound review` of the recording (near-miss events against the replayed ground truth)."""
+def _walker_footprint(tracker):
+    """(half_length, half_width) of a walker's box: the tracker's footprint from the parameter file,
+    else the tracker's defaults. The summary and the review both measure clearance to this box."""
+    from riskbound.tracking.settings import SPECS_BY_NAME
+
+    return tuple(float(tracker.get(name, SPECS_BY_NAME[name].default))
+                 for name in ("footprint_half_length_m", "footprint_half_width_m"))
+
+
+def _review(recorded, out, robot_radius_m, walker_half_extents_m, log):
+    """`riskbound review` of the recording (near-miss events against the replayed ground truth),
+    with the summary's footprints, so both report the same closest approach."""
     from riskbound.cli import main  # the review's own command line, so the report is the one users get
 
     log(f"reviewing {recorded}")
-    code = main(["review", str(recorded), "--out", str(out), "--robot-radius-m", str(robot_radius_m), "--quiet"])
+    code = main(["review", str(recorded), "--out", str(out), "--robot-radius-m", str(robot_radius_m),
+                 "--obstacle-half-extents-m", *map(str, walker_half_extents_m), "--quiet"])
     if code != 0:
         raise BagError(f"the review of {recorded} failed (exit code {code})")
     return out / "report.md"

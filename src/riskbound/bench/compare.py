@@ -54,6 +54,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from riskbound.clearance import disc_box_clearance
 from riskbound.motion.covariance import propagate_along_trajectory
 from riskbound.motion.forecast import ObstacleForecast
 from riskbound.planning.baselines.common import goal_reference, plan_cost
@@ -129,14 +130,6 @@ def considered_only(forecast, constraints):
     keep = np.array([int(i) in ids for i in forecast.track_ids], dtype=bool)
     return ObstacleForecast(forecast.track_ids[keep], forecast.times, forecast.positions[keep],
                             forecast.headings[keep], forecast.covariances[keep], forecast.half_extents[keep])
-
-
-def disc_box_distance(point, centres, headings, half_extents):
-    """Distance from `point` (2,) to each oriented box (J) [m]; 0 inside."""
-    d = np.asarray(point)[None, :] - centres
-    c, s = np.cos(headings), np.sin(headings)
-    local = np.abs(np.stack([d[:, 0] * c + d[:, 1] * s, -d[:, 0] * s + d[:, 1] * c], axis=-1))
-    return np.linalg.norm(np.clip(local - half_extents, 0.0, None), axis=-1)
 
 
 def _percentile(values, q):
@@ -431,8 +424,8 @@ def run_episode(planner, settings, scene, mc_samples, collision_check=True, reco
         for _ in range(SUBSTEPS):
             x = model.step(x, applied, dt / SUBSTEPS)
             walkers.advance(dt / SUBSTEPS)
-            if collision_check and disc_box_distance(x[0:2], walkers.positions, walkers.headings,
-                                                     walkers.half_extents).min() < settings.robot_radius_m:
+            if collision_check and disc_box_clearance(x[0:2], settings.robot_radius_m, walkers.positions,
+                                                      walkers.headings, walkers.half_extents).min() < 0.0:
                 collided = True
                 break
         if collided:

@@ -13,9 +13,10 @@ robot leaves `--start-s` seconds into the recording, after one second of trackin
 scenario's robot_start towards its robot_goal.
 
 Ground truth is checked at every frame: a contact is the robot's disc (the planner's
-robot_radius_m) overlapping a walker's disc (the scenario's walker_radius_m), the same test as
-`riskbound closedloop`. Parameters come from the planner, tracker and sim_robot sections of a ROS
-parameter file (default config/drone_closed_loop.yaml); --set and --tracker-set override them.
+robot_radius_m) overlapping a walker's box (the tracker's footprint along the walker's heading):
+riskbound.clearance, as in `riskbound closedloop` and `riskbound review`. Parameters come from the
+planner, tracker and sim_robot sections of a ROS parameter file (default
+config/drone_closed_loop.yaml); --set and --tracker-set override them.
 
 The same engine runs one cell of `riskbound sweep` (`run_cell`): there the walkers may react to
 the robot (`reaction_strength_m2_s2` > 0, riskbound.crowd.social_force.RobotPresence; the crowd is
@@ -41,6 +42,7 @@ from pathlib import Path
 import numpy as np
 import yaml
 
+from riskbound.clearance import disc_box_clearance
 from riskbound.planning.settings import PlannerSettings
 
 DEFAULT_PARAMS = "config/drone_closed_loop.yaml"
@@ -207,6 +209,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
                                             initial_y=float(start[1]), initial_yaw=heading,
                                             max_accel_mps2=max_accel))
     tracker = MultiTargetTracker(tracker_settings)
+    footprint = (tracker_settings.footprint_half_length_m, tracker_settings.footprint_half_width_m)
     occupancy = scenario_occupancy(scenario)
     mpc.reset()
     grid = planner.step_s * np.arange(1, planner.horizon_steps + 1)
@@ -230,7 +233,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
         if k < leave:
             continue
         x0 = robot.state.copy()
-        gaps = np.linalg.norm(frame.positions - x0[0:2], axis=1) - planner.robot_radius_m - scenario.walker_radius_m
+        gaps = disc_box_clearance(x0[0:2], planner.robot_radius_m, frame.positions, frame.headings, footprint)
         times.append(frame.time_s - crowd.frames[leave].time_s)
         clearance.append(float(gaps.min()) if len(gaps) else float("inf"))
         robot_path.append(x0[0:2])
@@ -353,7 +356,7 @@ def _plot(series, path):
         axes.plot(times, clearance, linewidth=1.0, label=label)
     axes.axhline(0.0, color="black", linewidth=1.0)
     axes.set_xlabel("time since the robot left [s]")
-    axes.set_ylabel("clearance to the nearest walker [m]\n(disc to disc; below 0: contact)")
+    axes.set_ylabel("clearance to the nearest walker [m]\n(disc to box; below 0: contact)")
     axes.set_title("offline closed loop on the synthetic crowd")
     axes.grid(alpha=0.3)
     if len(series) <= 12:

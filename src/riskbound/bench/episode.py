@@ -8,7 +8,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from riskbound.bench.scripted_crowd import ScriptedCrowd, disc_box_clearance
+from riskbound.bench.scripted_crowd import ScriptedCrowd
+from riskbound.clearance import disc_box_clearance
 from riskbound.planning.mpc import ChanceConstrainedMPC
 
 

@@ -74,13 +74,3 @@ class ScriptedCrowd:
         headings = np.repeat(self.headings[:, None], len(times), axis=1)
         return ObstacleForecast(self.ids, times, positions, headings, covariances, self.half_extents)
 
-
-def disc_box_clearance(centre, radius, box_centres, box_headings, box_half_extents):
-    """Signed distance [m] between a disc and oriented boxes (negative when they overlap)."""
-    offset = np.asarray(centre)[None, :] - box_centres
-    c, s = np.cos(box_headings), np.sin(box_headings)
-    local = np.abs(np.stack([c * offset[:, 0] + s * offset[:, 1], -s * offset[:, 0] + c * offset[:, 1]], axis=-1))
-    q = local - box_half_extents
-    outside = np.linalg.norm(np.maximum(q, 0.0), axis=-1)
-    inside = np.minimum(np.max(q, axis=-1), 0.0)
-    return outside + inside - radius

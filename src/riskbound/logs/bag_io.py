@@ -62,7 +62,7 @@ def _qos(reliability, depth):
                QosLiveliness.AUTOMATIC, _NO_TIME, False)
 
 
-# Offered QoS stored per topic, so a standard player republishes with the profiles a live
+# Offered QoS stored per topic, so a replay republishes with the profiles a live
 # system would use: sensor-data style for detections and the clock, reliable for ground truth.
 CROWD_TOPICS = {
     TOPIC_DETECTIONS: (POSE_ARRAY, _qos(QosReliability.BEST_EFFORT, 5)),

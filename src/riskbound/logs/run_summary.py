@@ -1,13 +1,15 @@
 """Summary of one closed-loop run from its recorded bag and the crowd bag it replayed (no ROS).
 
-Ground truth: the walkers of the crowd bag's /crowd_truth (discs of the bag's walker_radius_m)
-and the robot of the recorded /odom (a disc of the planner's robot_radius_m; the simulated robot's
-odometry is its true state). At every truth frame inside the run the robot position is
-interpolated linearly from odometry (50 Hz against walkers at 10 Hz), and the clearance is
-
-    c_k = min_j ‖p_robot(t_k) − p_j(t_k)‖ − r_robot − r_walker,
-
-negative when the footprints overlap: a collision. Planner cycles are the /planner_status
+Ground truth: the walkers of the crowd bag's /crowd_truth (poses with headings and ids) and the
+robot of the recorded /odom (the simulated robot's odometry is its true state). Clearance is
+riskbound.clearance's, the one definition the review, the benchmarks and the tests use: the
+robot's disc (the planner's robot_radius_m) against each walker's box oriented with its heading
+(the tracker's footprint half-extents), signed, negative when the footprints overlap. At every
+truth frame inside the run the robot position is interpolated linearly from odometry (50 Hz
+against walkers at 10 Hz); c_k is the smallest clearance over the walkers of frame k, and a frame
+with c_k < 0 is a collision. The minimum clearance is riskbound.clearance.closest_approach over
+the run (refined between frames), the number `riskbound review` reports for the same recording.
+Planner cycles are the /planner_status
 messages (one per cycle, whatever its outcome); the cycles expected are the control rate times
 the span between the first and the last status (log times, i.e. the recorder's simulated clock).
 """
@@ -18,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
+from riskbound.clearance import closest_approach, disc_box_clearance
 from riskbound.logs.bag_io import BagError, read_crowd_bag, read_messages
 
 STATUS_TOPIC = "/planner_status"
@@ -40,11 +43,12 @@ class RunSummary:
     final_distance_to_goal_m: float
     min_distance_to_goal_m: float
     collisions: int                  # truth frames with overlapping footprints
-    min_clearance_m: float
+    min_clearance_m: float           # riskbound.clearance.closest_approach over the run
     min_clearance_time_s: float      # seconds after the first odometry
+    min_clearance_walker_id: int     # -1 when no walker was compared
     truth_frames_checked: int
     robot_radius_m: float
-    walker_radius_m: float
+    walker_half_extents_m: list      # [half_length, half_width] of each walker's box
     planner_cycles: int
     planner_cycles_expected: int
     planner_status_counts: dict
@@ -73,6 +77,7 @@ class RunSeries:
     odom_xy: np.ndarray
     truth_t: np.ndarray
     truth_positions: list
+    truth_headings: list
     truth_ids: list
     clearance_t: np.ndarray
     clearance_m: np.ndarray
@@ -98,9 +103,11 @@ def _float(text):
         return float("nan")
 
 
-def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate_hz, goal_tolerance_m=0.3):
+def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate_hz, goal_tolerance_m=0.3,
+                  walker_half_extents_m=(0.25, 0.2)):
     """(RunSummary, RunSeries) of a recorded run. BagError when a bag is unreadable or lacks
-    odometry or planner statuses."""
+    odometry or planner statuses. walker_half_extents_m: (half_length, half_width) of each
+    walker's box, the tracker's footprint."""
     odom_t, odom_xy, status_t, status, cmd_count, stops_total, counts = [], [], [], [], 0, 0, {}
     for topic, _, time_ns, message in read_messages(recorded_bag, [ODOM_TOPIC, STATUS_TOPIC, CMD_TOPIC,
                                                                    DIAGNOSTICS_TOPIC]):
@@ -126,19 +133,34 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
     order = np.argsort(odom_t, kind="stable")
     odom_t = np.asarray(odom_t)[order]
     odom_xy = np.asarray(odom_xy, dtype=float).reshape(-1, 2)[order]
+    # As the review reads odometry: non-finite samples and repeated stamps carry no position.
+    keep = np.all(np.isfinite(odom_xy), axis=1)
+    keep[1:] &= np.diff(odom_t) > 0.0
+    odom_t, odom_xy = odom_t[keep], odom_xy[keep]
+    if len(odom_t) < 2:
+        raise BagError(f"{recorded_bag}: fewer than two usable {ODOM_TOPIC} messages: no robot path")
     t0 = odom_t[0]
 
     crowd = read_crowd_bag(crowd_bag)
-    walker_radius_m = float(crowd.metadata.get("walker_radius_m", 0.25))
+    extents = np.asarray(walker_half_extents_m, dtype=float)
     inside = (crowd.truth.stamps_s >= odom_t[0]) & (crowd.truth.stamps_s <= odom_t[-1])
     truth_t = crowd.truth.stamps_s[inside]
     truth_positions = [p for p, keep in zip(crowd.truth.positions, inside) if keep]
+    truth_headings = [h for h, keep in zip(crowd.truth.headings, inside) if keep]
     truth_ids = [i for i, keep in zip(crowd.truth_ids, inside) if keep]
     robot_at_truth = np.column_stack([np.interp(truth_t, odom_t, odom_xy[:, 0]),
                                       np.interp(truth_t, odom_t, odom_xy[:, 1])])
     clearance = np.array([
-        (np.min(np.linalg.norm(walkers - robot, axis=1)) if len(walkers) else np.inf)
-        - robot_radius_m - walker_radius_m for robot, walkers in zip(robot_at_truth, truth_positions)])
+        np.min(disc_box_clearance(robot, robot_radius_m, walkers, np.nan_to_num(headings), extents))
+        if len(walkers) else np.inf
+        for robot, walkers, headings in zip(robot_at_truth, truth_positions, truth_headings)])
+    walkers_per_frame = [len(ids) for ids in truth_ids]
+    approach = closest_approach(
+        odom_t, odom_xy, robot_radius_m, np.repeat(truth_t, walkers_per_frame),
+        np.concatenate(truth_ids).astype(np.int64) if truth_ids else np.zeros(0, dtype=np.int64),
+        np.concatenate(truth_positions) if truth_positions else np.zeros((0, 2)),
+        np.nan_to_num(np.concatenate(truth_headings)) if truth_headings else np.zeros(0),
+        np.tile(extents, (sum(walkers_per_frame), 1)))
 
     goal = np.asarray(goal_xy, dtype=float)
     distance = np.linalg.norm(odom_xy - goal, axis=1)
@@ -156,7 +178,6 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
     for word in words:
         status_counts[word] = status_counts.get(word, 0) + 1
 
-    worst = int(np.argmin(clearance)) if len(clearance) else None
     summary = RunSummary(
         goal_xy=[float(goal[0]), float(goal[1])],
         goal_reached=bool(len(arrived)),
@@ -164,10 +185,11 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
         final_distance_to_goal_m=float(distance[-1]),
         min_distance_to_goal_m=float(np.min(distance)),
         collisions=int(np.sum(clearance < 0.0)),
-        min_clearance_m=float(clearance[worst]) if worst is not None else float("inf"),
-        min_clearance_time_s=float(truth_t[worst] - t0) if worst is not None else float("nan"),
+        min_clearance_m=approach.clearance_m if approach is not None else float("inf"),
+        min_clearance_time_s=approach.time_s - t0 if approach is not None else float("nan"),
+        min_clearance_walker_id=approach.obstacle_id if approach is not None else -1,
         truth_frames_checked=int(len(clearance)),
-        robot_radius_m=float(robot_radius_m), walker_radius_m=walker_radius_m,
+        robot_radius_m=float(robot_radius_m), walker_half_extents_m=[float(v) for v in extents],
         planner_cycles=int(len(status_t)), planner_cycles_expected=expected,
         planner_status_counts=dict(sorted(status_counts.items())),
         solves=int(len(solved_ms)),
@@ -180,7 +202,8 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
         message_counts=dict(sorted({**counts, CMD_TOPIC: cmd_count}.items())),
     )
     series = RunSeries(odom_t=odom_t - t0, odom_xy=odom_xy, truth_t=truth_t - t0, truth_positions=truth_positions,
-                       truth_ids=truth_ids, clearance_t=truth_t - t0, clearance_m=clearance,
+                       truth_headings=truth_headings, truth_ids=truth_ids, clearance_t=truth_t - t0,
+                       clearance_m=clearance,
                        status_t=status_t - t0, solve_ms=solve_ms, status_words=words)
     return summary, series
 
@@ -196,9 +219,10 @@ def summary_text(summary):
         f"  goal ({s.goal_xy[0]:.1f}, {s.goal_xy[1]:.1f}) " + (
             f"reached after {s.time_to_goal_s:.1f} s" if s.goal_reached else "not reached")
         + f", path {s.path_length_m:.1f} m, mean speed {s.mean_speed_mps:.2f} m/s",
-        f"  minimum clearance {s.min_clearance_m:.3f} m at t={s.min_clearance_time_s:.1f} s "
-        f"(robot disc {s.robot_radius_m} m, walker discs {s.walker_radius_m} m, {s.truth_frames_checked} "
-        f"truth frames), collisions {s.collisions}",
+        f"  minimum clearance {s.min_clearance_m:.3f} m at t={s.min_clearance_time_s:.2f} s, walker "
+        f"{s.min_clearance_walker_id} (robot disc {s.robot_radius_m:g} m against walker boxes "
+        f"{s.walker_half_extents_m[0]:g} × {s.walker_half_extents_m[1]:g} m, {s.truth_frames_checked} truth frames), "
+        f"collisions {s.collisions}",
         f"  planner: {s.planner_cycles} cycles reported of {s.planner_cycles_expected} expected, {s.solves} solves, "
         f"solve ms median {s.solve_ms_median:.1f}, p95 {s.solve_ms_p95:.1f}, max {s.solve_ms_max:.1f}",
         "  planner statuses: " + ", ".join(f"{k or '(none)'} {v}" for k, v in s.planner_status_counts.items()),
@@ -213,7 +237,7 @@ def plot_run(summary, series, out_dir):
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    from matplotlib.patches import Circle
+    from matplotlib.patches import Circle, Polygon
 
     out_dir = Path(out_dir)
     paths = []
@@ -235,8 +259,13 @@ def plot_run(summary, series, out_dir):
         robot = [np.interp(series.clearance_t[worst], series.odom_t, series.odom_xy[:, i]) for i in (0, 1)]
         axes.add_patch(Circle(robot, summary.robot_radius_m, fill=False, color="tab:red", linewidth=1.5,
                               label=f"closest approach ({summary.min_clearance_m:.2f} m)"))
-        for walker in series.truth_positions[worst]:
-            axes.add_patch(Circle(walker, summary.walker_radius_m, fill=False, color="tab:orange", linewidth=1.0))
+        half_length, half_width = summary.walker_half_extents_m
+        corners = np.array([[half_length, half_width], [-half_length, half_width], [-half_length, -half_width],
+                            [half_length, -half_width]])
+        for walker, heading in zip(series.truth_positions[worst], np.nan_to_num(series.truth_headings[worst])):
+            c, s = np.cos(heading), np.sin(heading)
+            axes.add_patch(Polygon(walker + corners @ np.array([[c, s], [-s, c]]), closed=True, fill=False,
+                                   color="tab:orange", linewidth=1.0))
     axes.set_aspect("equal")
     axes.set_xlabel("x [m]")
     axes.set_ylabel("y [m]")

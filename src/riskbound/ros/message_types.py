@@ -39,7 +39,7 @@ def qos_from_bag(qos):
     """rclpy QoSProfile for a rosbags Qos stored in bag metadata (None → DEFAULT_QOS).
 
     History, depth, reliability and durability are carried over; deadline, lifespan and liveliness
-    are left at their defaults, as the standard player does.
+    are left at their defaults: a replay has no use for them.
     """
     if qos is None:
         return DEFAULT_QOS

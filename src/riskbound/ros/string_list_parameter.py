@@ -1,7 +1,7 @@
 """Read-only string-array parameters whose default is the empty list.
 
 rclpy infers a parameter's type from its default, and `[]` infers a byte array, which then refuses
-the string list a launch file or `-p "topics:=[/a, /b]"` gives. Declaring the type alone
+the string list a launch file or `-p "only_topics:=[/a, /b]"` gives. Declaring the type alone
 (Parameter.Type.STRING_ARRAY) leaves the parameter unset when nothing is given; it reads as ().
 """
 

@@ -5,23 +5,41 @@
                      [--replan-risk A] [--replan-param name=value ...] [--max-figures 10] [--quiet]
 
 Writes DIR/report.md, DIR/events.json and PNG figures (see riskbound.logs.review.report). Progress
-goes to stderr, a short summary to stdout. A bag that cannot be read (missing, truncated, corrupt)
-or an invalid option prints one line naming the problem and exits with status 2.
+goes to stderr, a short summary to stdout.
+
+Exit codes (EPILOG): 0 the run was examined (whatever was found); 2 an invalid option or a bag
+that cannot be read (missing, truncated, corrupt), one line on stderr naming the problem;
+3 the run could not be examined (no robot path, no obstacles, a --namespace that matches nothing,
+or robot and obstacles never overlapping in time): the summary line and the report say why, and
+neither claims that nothing happened.
 """
 
 import sys
 import time
 from pathlib import Path
 
+from riskbound.clearance import NEIGHBOUR_GAP_PERIODS, closest_approach
 from riskbound.logs.bag_io import BagError
 from riskbound.logs.review import events as event_search
+from riskbound.logs.review.coverage import not_examined_reasons
 from riskbound.logs.review.forecast_check import check_event
 from riskbound.logs.review.load import load_review_data
 
-EXIT_ERROR = 2
+EXIT_EXAMINED, EXIT_ERROR, EXIT_NOT_EXAMINED = 0, 2, 3
+EPILOG = ("exit codes: 0 the run was examined (events or none); 2 an invalid option or an unreadable bag "
+          "(one line on stderr); 3 the run could not be examined: no robot path, no obstacles, a --namespace "
+          "that matches no topic, or robot and obstacles never overlapping in time (the reason is in the "
+          "summary line and in report.md)")
+
+
+def _risk_range():
+    from riskbound.planning.settings import SPECS_BY_NAME  # the planner's own range for risk_level
+
+    return SPECS_BY_NAME["risk_level"].allowed()
 
 
 def add_arguments(parser):
+    parser.epilog = EPILOG
     parser.add_argument("bag", help="rosbag2 bag: directory, or a .mcap / .db3 file")
     parser.add_argument("--out", metavar="DIR", help="output directory (default: ./review_<bag name>)")
     parser.add_argument("--clearance-m", type=float, default=0.5,
@@ -35,7 +53,8 @@ def add_arguments(parser):
     parser.add_argument("--merge-gap-s", type=float, default=0.5,
                         help="approaches of one obstacle closer together than this are one event [s] (default 0.5)")
     parser.add_argument("--replan-risk", type=float, default=None, metavar="A",
-                        help="re-solve the planner at each event onset with risk level A and overlay the plans")
+                        help=f"re-solve the planner at each event onset with risk level A in {_risk_range()} "
+                             "and overlay the plans")
     parser.add_argument("--replan-param", action="append", default=[], metavar="NAME=VALUE",
                         help="another planner setting for the re-solve (repeatable), e.g. max_speed_mps=0.8")
     parser.add_argument("--max-figures", type=int, default=10,
@@ -83,10 +102,13 @@ def _check(args):
         raise ValueError(f"--merge-gap-s {args.merge_gap_s}: must be a finite number ≥ 0")
     if args.max_figures < 0:
         raise ValueError(f"--max-figures {args.max_figures}: must be ≥ 0")
+    if args.out and Path(args.out).exists() and not Path(args.out).is_dir():
+        raise ValueError(f"--out {args.out}: exists and is not a directory; name a directory (new or existing)")
 
 
 def review(args, progress):
-    """The whole review; returns (events, output files, elapsed seconds)."""
+    """The whole review; returns (data, events, output files, elapsed seconds). data.not_examined
+    holds the reasons the run could not be examined (empty when it was)."""
     started = time.perf_counter()
     _check(args)
     overrides = {}
@@ -102,6 +124,13 @@ def review(args, progress):
                             half_extents_m=args.obstacle_half_extents_m, progress=progress)
     events, series = event_search.find_events(data, args.clearance_m, args.merge_gap_s)
     clearance = event_search.observation_clearances(data)
+    data.not_examined = not_examined_reasons(data, clearance)
+    data.closest = None
+    if not data.not_examined and not data.obstacles.anonymous:
+        obs = data.obstacles
+        data.closest = closest_approach(data.robot.times_s, data.robot.positions, data.robot_radius_m, obs.times_s,
+                                        obs.ids, obs.positions, obs.headings, obs.half_extents,
+                                        NEIGHBOUR_GAP_PERIODS * event_search.nominal_frame_period_s(obs))
     for i, event in enumerate(events):
         event.forecast_checks = check_event(event, data)
         event.planner = event_search.planner_context(data, event)
@@ -113,8 +142,11 @@ def review(args, progress):
             progress("replanning", (i + 1) / len(events))
     from riskbound.logs.review.report import write_outputs  # matplotlib: only once there is a bag to draw
 
-    files = write_outputs(out, data, events, series, clearance, args.clearance_m, overrides, args.max_figures,
-                          progress)
+    try:
+        files = write_outputs(out, data, events, series, clearance, args.clearance_m, overrides, args.max_figures,
+                              progress)
+    except OSError as error:
+        raise ValueError(f"--out {out}: cannot write the report there ({error.strerror or error})") from None
     return data, events, files, time.perf_counter() - started
 
 
@@ -127,10 +159,18 @@ def run(args):
         print(f"riskbound review: error: {error}", file=sys.stderr)
         return EXIT_ERROR
     progress.end()
-    collisions = sum(e.collision for e in events)
     report = next(f for f in files if f.name == "report.md")
-    print(f"{data.path}: {len(events)} event(s), {collisions} collision(s); obstacles from {data.obstacles.source}")
+    if data.not_examined:
+        print(f"{data.path}: NOT EXAMINED: {'; '.join(data.not_examined)}")
+    else:
+        collisions = sum(e.collision for e in events)
+        closest = (f"; closest approach {data.closest.clearance_m:.3f} m at {data.closest.time_s - data.start_s:.2f} s"
+                   if data.closest is not None else "")
+        print(f"{data.path}: {len(events)} event(s), {collisions} collision(s){closest}; "
+              f"obstacles from {data.obstacles.source}")
     for name, msgtype, _ in data.missing:
         print(f"  missing topic: {name} ({msgtype})")
+    for role, count in sorted(data.rejected.items()):
+        print(f"  rejected: {count} {role} message(s) with implausible values")
     print(f"report: {report} ({len(files)} files, {elapsed:.1f} s)")
-    return 0
+    return EXIT_NOT_EXAMINED if data.not_examined else EXIT_EXAMINED

@@ -6,9 +6,10 @@ odometry), per obstacle id. An event is a run of observations below the threshol
 obstacle less than `merge_gap_s` apart are one event, so noise around the threshold does not split
 one close pass into many. Onset and end are where the clearance crosses the threshold, linearly
 interpolated between the observations on either side. The minimum is refined between the
-observations around the lowest sample: robot from odometry, obstacle linearly interpolated (constant
-velocity between observations), on a grid of REFINE_POINTS instants and then on a finer grid
-around its best point (resolution (2Δt / 40) / 20, a quarter millisecond at 10 Hz).
+observations around the lowest sample exactly as riskbound.clearance.closest_approach does (robot
+from odometry, obstacle linearly interpolated between observations, a coarse and a fine grid), so
+the event that holds the run's closest approach reports the same clearance as the closed-loop
+summary.
 
 Relative speed and time-to-collision are taken at onset: obstacle velocity by finite differences
 of its observations, robot velocity by finite differences of odometry; time-to-collision is the
@@ -21,9 +22,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from riskbound.logs.review.footprint import disc_box_clearance, time_to_contact
+from riskbound.clearance import NEIGHBOUR_GAP_PERIODS, Approach, disc_box_clearance, refine_between
+from riskbound.logs.review.footprint import time_to_contact
 
-REFINE_POINTS = 41
 # Planner and watchdog context starts this long before onset.
 CONTEXT_S = 2.0
 # Statuses at or above this DiagnosticStatus level are failures (2 = ERROR).
@@ -122,9 +123,10 @@ def _crossing(t0, c0, t1, c1, threshold):
     return t0 + (threshold - c0) / (c1 - c0) * (t1 - t0)
 
 
-def _interp_heading(times, headings, t):
-    unwrapped = np.unwrap(headings)
-    return np.interp(t, times, unwrapped)
+def nominal_frame_period_s(obstacles):
+    """Median time between obstacle frames [s] (0.1 when there are fewer than two)."""
+    frame_dt = np.diff(obstacles.frame_times_s)
+    return float(np.median(frame_dt)) if len(frame_dt) else 0.1
 
 
 def find_events(data, clearance_m=0.5, merge_gap_s=0.5):
@@ -142,8 +144,7 @@ def find_events(data, clearance_m=0.5, merge_gap_s=0.5):
     if len(obs) == 0 or len(data.robot) < 2:
         return [], series
 
-    frame_dt = np.diff(obs.frame_times_s)
-    nominal_dt = float(np.median(frame_dt)) if len(frame_dt) else 0.1
+    nominal_dt = nominal_frame_period_s(obs)
     max_step_s = max(merge_gap_s, 1.5 * nominal_dt)
     if obs.anonymous:
         rows = series.row[series.row >= 0]
@@ -167,14 +168,14 @@ def find_events(data, clearance_m=0.5, merge_gap_s=0.5):
     events = []
     for first, last in merged:
         events.append(_event(data, obs, rows, ids, values, times, first, last, clearance_m, max_step_s,
-                             robot_velocity, obstacle_velocity))
+                             nominal_dt, robot_velocity, obstacle_velocity))
     events.sort(key=lambda e: (e.t_start, -1 if e.obstacle_id is None else e.obstacle_id))
     for i, event in enumerate(events):
         event.index = i + 1
     return events, series
 
 
-def _event(data, obs, rows, ids, values, times, first, last, threshold, max_step_s, robot_velocity,
+def _event(data, obs, rows, ids, values, times, first, last, threshold, max_step_s, nominal_dt_s, robot_velocity,
            obstacle_velocity):
     anonymous = obs.anonymous
 
@@ -191,31 +192,16 @@ def _event(data, obs, rows, ids, values, times, first, last, threshold, max_step
     track = None if anonymous else obs.track(int(ids[first]))
 
     if track is not None:
-        lo = k - 1 if neighbour(k - 1, k) else k
-        hi = k + 1 if neighbour(k + 1, k) else k
-        if hi > lo:
-            track_times, track_xy = obs.times_s[track], obs.positions[track]
-
-            def evaluate(grid):
-                xy = np.stack([np.interp(grid, track_times, track_xy[:, 0]),
-                               np.interp(grid, track_times, track_xy[:, 1])], axis=-1)
-                headings = _interp_heading(track_times, obs.headings[track], grid)
-                robot_grid = data.robot.position_at(grid)
-                clearance = disc_box_clearance(robot_grid, data.robot_radius_m, xy, headings, obs.half_extents[row])
-                return clearance, robot_grid, xy, headings
-
-            # Coarse grid over both neighbouring intervals, then a fine one around its best point.
-            grid = np.linspace(times[lo], times[hi], REFINE_POINTS)
-            for _ in range(2):
-                fine, robot_grid, xy, headings = evaluate(grid)
-                if not np.any(np.isfinite(fine)):
-                    break
-                j = int(np.nanargmin(fine))
-                if fine[j] < c_min:
-                    t_min, c_min = float(grid[j]), float(fine[j])
-                    robot_xy, obstacle_xy, heading = robot_grid[j], xy[j], float(np.angle(np.exp(1j * headings[j])))
-                step = grid[1] - grid[0]
-                grid = np.linspace(max(grid[j] - step, times[lo]), min(grid[j] + step, times[hi]), REFINE_POINTS)
+        # The same refinement as riskbound.clearance.closest_approach, so the run's closest
+        # approach and the event that holds it agree.
+        refine_step_s = NEIGHBOUR_GAP_PERIODS * nominal_dt_s
+        t_from = times[k - 1] if neighbour(k - 1, k) and times[k] - times[k - 1] <= refine_step_s else times[k]
+        t_to = times[k + 1] if neighbour(k + 1, k) and times[k + 1] - times[k] <= refine_step_s else times[k]
+        found = refine_between(data.robot.times_s, data.robot.positions, data.robot_radius_m, obs.times_s[track],
+                               obs.positions[track], obs.headings[track], obs.half_extents[row], float(t_from),
+                               float(t_to), Approach(c_min, t_min, int(ids[first]), robot_xy, obstacle_xy, heading))
+        t_min, c_min = found.time_s, found.clearance_m
+        robot_xy, obstacle_xy, heading = found.robot_xy, found.obstacle_xy, found.obstacle_heading
 
     t_start = float(times[first])
     if neighbour(first - 1, first):

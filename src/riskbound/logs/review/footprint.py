@@ -1,32 +1,10 @@
-"""Footprint geometry for the review: clearance between the robot's disc and an obstacle's oriented
-box, and the time until they touch at constant relative velocity.
-
-The robot is a disc of radius r; an obstacle is a box of half-extents (half_length along its
-heading, half_width across) centred on its position. Clearance is the signed distance between the
-two shapes: distance from the disc centre to the box minus r, negative when they overlap (inside
-the box the distance to the box is minus the depth to its nearest face).
+"""Time until the robot's disc touches an obstacle's box at constant velocities (the review's
+time to collision). The footprints and the clearance between them are riskbound.clearance's.
 """
 
 import numpy as np
 
-
-def to_box_frame(offset, heading):
-    """World-frame vectors (..., 2) → the box frame of an obstacle with `heading` (...) [rad]."""
-    c, s = np.cos(heading), np.sin(heading)
-    return np.stack([c * offset[..., 0] + s * offset[..., 1], -s * offset[..., 0] + c * offset[..., 1]], axis=-1)
-
-
-def disc_box_clearance(robot_xy, radius, box_xy, box_heading, half_extents):
-    """Signed clearance [m] between a disc and oriented boxes; all arguments broadcast.
-
-    robot_xy (..., 2), radius scalar or (...), box_xy (..., 2), box_heading (...), half_extents (..., 2).
-    NaN positions give NaN.
-    """
-    local = np.abs(to_box_frame(np.asarray(robot_xy) - np.asarray(box_xy), np.asarray(box_heading)))
-    q = local - half_extents
-    outside = np.sqrt(np.sum(np.maximum(q, 0.0) ** 2, axis=-1))
-    inside = np.minimum(np.max(q, axis=-1), 0.0)
-    return outside + inside - radius
+from riskbound.clearance import to_box_frame
 
 
 def _slab_entry(p, v, half):

@@ -19,7 +19,7 @@ from dataclasses import fields
 
 import numpy as np
 
-from riskbound.logs.review.footprint import disc_box_clearance
+from riskbound.clearance import disc_box_clearance
 from riskbound.motion.forecast import ObstacleForecast
 from riskbound.planning.mpc import ChanceConstrainedMPC
 from riskbound.planning.settings import SPECS_BY_NAME, PlannerSettings
@@ -28,10 +28,11 @@ OFFLINE_CONTROL_RATE_HZ = 1.0
 _SETTING_NAMES = {f.name for f in fields(PlannerSettings)}
 
 
-def parse_setting(name, text):
-    """A planner setting from text, typed like its default; ValueError names the setting."""
+def parse_setting(name, text, option="--replan-param"):
+    """A planner setting from text, typed like its default; ValueError names the option given
+    (`option`), the setting and, when out of range, the allowed range."""
     if name not in SPECS_BY_NAME:
-        raise ValueError(f"--replan-param {name}: not a planner setting; known: {', '.join(sorted(SPECS_BY_NAME))}")
+        raise ValueError(f"{option} {name}: not a planner setting; known: {', '.join(sorted(SPECS_BY_NAME))}")
     default = SPECS_BY_NAME[name].default
     try:
         if isinstance(default, bool):
@@ -46,10 +47,10 @@ def parse_setting(name, text):
             value = text
     except ValueError:
         expected = {bool: "true or false", int: "an integer", float: "a number"}.get(type(default), "text")
-        raise ValueError(f"--replan-param {name}={text!r}: expected {expected}") from None
+        raise ValueError(f"{option} {name}={text!r}: expected {expected}") from None
     reason = SPECS_BY_NAME[name].check(value)
     if reason:
-        raise ValueError(f"--replan-param {reason}")
+        raise ValueError(f"{option} {reason}")
     return value
 
 
@@ -62,7 +63,12 @@ def parse_overrides(risk_level=None, params=()):
             raise ValueError(f"--replan-param {item!r}: expected name=value")
         overrides[name.strip()] = parse_setting(name.strip(), text.strip())
     if risk_level is not None:
-        overrides["risk_level"] = parse_setting("risk_level", repr(float(risk_level)))
+        risk_level = float(risk_level)
+        reason = SPECS_BY_NAME["risk_level"].check(risk_level)
+        if reason:
+            raise ValueError(f"--replan-risk {risk_level:g}: out of range, must be in "
+                             f"{SPECS_BY_NAME['risk_level'].allowed()}")
+        overrides["risk_level"] = risk_level
     return overrides
 
 
@@ -154,7 +160,9 @@ def _plan_summary(result, start_s, data, event):
     summary = {"success": bool(result.success), "status": result.status, "solver_status": result.solver_status,
                "solve_ms": float(result.solve_ms), "iterations": int(result.iterations),
                "min_margin_m": _finite_or_none(result.min_margin_m), "positions": [], "clearance_vs_actual_m": None}
-    if len(result.states):
+    # Only a plan the planner would have commanded is scored against what happened; the last
+    # iterate of an infeasible or failed solve is no plan.
+    if result.success and len(result.states):
         positions = np.asarray(result.states)[:, 0:2]
         times = start_s + np.asarray(result.times)
         summary["positions"] = positions.tolist()

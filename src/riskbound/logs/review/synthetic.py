@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from riskbound.logs import bag_io
-from riskbound.logs.review import load
+from riskbound.logs.review import topics as review_topics
 from riskbound.motion.forecast import ObstacleForecast
 from riskbound.forecast_schema import FIELD_NAMES, POINT_DTYPE, forecast_points
 
@@ -21,7 +21,7 @@ _T = bag_io.TYPESTORE.types
 _UINT32, _FLOAT32 = 6, 7  # sensor_msgs/PointField datatypes
 ALL_TOPICS = ("odom", "crowd_truth", "crowd_truth_ids", "detections", "obstacle_forecast", "plan",
               "planner_status", "diagnostics", "cmd_vel", "cmd_vel_plan", "goal")
-_TYPES = {role: load.ROLES[role][0] for role in ALL_TOPICS}
+_TYPES = {role: review_topics.ROLES[role][0] for role in ALL_TOPICS}
 
 
 @dataclass
@@ -99,7 +99,7 @@ def _serialize(message, role):
 def odometry_cdr(time_s, position, yaw, body_velocity, frame_id="odom", child_frame_id="base_link"):
     pose_cov = np.diag([1e-4, 1e-4, 1e6, 1e6, 1e6, 1e-3])  # planar robot: z, roll, pitch unknown
     twist_cov = np.diag([1e-3, 1e-3, 1e6, 1e6, 1e6, 1e-3])
-    message = _T[load.ODOMETRY](
+    message = _T[review_topics.ODOMETRY](
         header=_header(time_s, frame_id), child_frame_id=child_frame_id,
         pose=_T["geometry_msgs/msg/PoseWithCovariance"](pose=_pose(position[0], position[1], yaw),
                                                         covariance=pose_cov.ravel()),
@@ -117,7 +117,7 @@ def forecast_cloud_cdr(time_s, forecast, frame_id="odom"):
     fields = [_T["sensor_msgs/msg/PointField"](name=name, offset=POINT_DTYPE.fields[name][1],
                                                 datatype=_UINT32 if name in ("track_id", "step") else _FLOAT32,
                                                 count=1) for name in FIELD_NAMES]
-    message = _T[load.POINT_CLOUD](header=_header(time_s, frame_id), height=1, width=J * S, fields=fields,
+    message = _T[review_topics.POINT_CLOUD](header=_header(time_s, frame_id), height=1, width=J * S, fields=fields,
                                    is_bigendian=False, point_step=POINT_DTYPE.itemsize,
                                    row_step=POINT_DTYPE.itemsize * J * S,
                                    data=np.frombuffer(points.tobytes(), dtype=np.uint8), is_dense=True)
@@ -127,7 +127,7 @@ def forecast_cloud_cdr(time_s, forecast, frame_id="odom"):
 def path_cdr(time_s, times_s, positions, frame_id="odom"):
     poses = [_T["geometry_msgs/msg/PoseStamped"](header=_header(t, frame_id), pose=_pose(x, y, 0.0))
              for t, (x, y) in zip(times_s, positions)]
-    return _serialize(_T[load.PATH](header=_header(time_s, frame_id), poses=poses), "plan")
+    return _serialize(_T[review_topics.PATH](header=_header(time_s, frame_id), poses=poses), "plan")
 
 
 def _key_values(values):
@@ -135,25 +135,26 @@ def _key_values(values):
 
 
 def planner_status_cdr(level, message, values):
-    status = _T[load.DIAGNOSTIC_STATUS](level=level, name="riskbound planner", message=message,
+    status = _T[review_topics.DIAGNOSTIC_STATUS](level=level, name="riskbound planner", message=message,
                                         hardware_id="/planner", values=_key_values(values))
     return _serialize(status, "planner_status")
 
 
 def watchdog_diagnostics_cdr(time_s, level, message, values):
-    status = _T[load.DIAGNOSTIC_STATUS](level=level, name=load.WATCHDOG_STATUS_NAME, message=message,
+    status = _T[review_topics.DIAGNOSTIC_STATUS](level=level, name=review_topics.WATCHDOG_STATUS_NAME, message=message,
                                         hardware_id="/watchdog", values=_key_values(values))
-    array = _T[load.DIAGNOSTIC_ARRAY](header=_header(time_s, ""), status=[status])
+    array = _T[review_topics.DIAGNOSTIC_ARRAY](header=_header(time_s, ""), status=[status])
     return _serialize(array, "diagnostics")
 
 
 def twist_cdr(time_s, velocity, frame_id="base_link"):
     twist = _T["geometry_msgs/msg/Twist"](linear=_vector(velocity[0], velocity[1]), angular=_vector(z=velocity[2]))
-    return _serialize(_T[load.TWIST_STAMPED](header=_header(time_s, frame_id), twist=twist), "cmd_vel")
+    return _serialize(_T[review_topics.TWIST_STAMPED](header=_header(time_s, frame_id), twist=twist), "cmd_vel")
 
 
 def goal_cdr(time_s, position, frame_id="odom"):
-    message = _T[load.POSE_STAMPED](header=_header(time_s, frame_id), pose=_pose(position[0], position[1], 0.0))
+    message = _T[review_topics.POSE_STAMPED](header=_header(time_s, frame_id),
+                                             pose=_pose(position[0], position[1], 0.0))
     return _serialize(message, "goal")
 
 
@@ -170,10 +171,12 @@ def _forecast(run, k, present, velocities):
 
 
 def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="", robot_radius_m=None,
-                     progress=None):
+                     progress=None, with_clock=False):
     """Write `run` as a recorded bag holding the chosen `topics` (names from ALL_TOPICS; each is
     written as /<namespace>/<name>, /diagnostics and crowd topics as the crowd bags name them).
-    robot_radius_m: also put the radius into planner_status (the key a planner may add)."""
+    robot_radius_m: also put the radius into planner_status (the key a planner may add).
+    with_clock: also write /clock at every frame, so that the bag is a crowd bag as well
+    (riskbound.logs.bag_io.read_crowd_bag reads it, as the closed-loop summary does)."""
     unknown = set(topics) - set(ALL_TOPICS)
     if unknown:
         raise ValueError(f"topics: unknown {sorted(unknown)}; allowed: {', '.join(ALL_TOPICS)}")
@@ -185,6 +188,8 @@ def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="",
         return f"{prefix}/{role}"
 
     declared = {name(role): (_TYPES[role], None) for role in topics}
+    if with_clock:
+        declared[bag_io.TOPIC_CLOCK] = bag_io.CROWD_TOPICS[bag_io.TOPIC_CLOCK]
     yaws = run.robot_yaws()
     robot_v = np.gradient(run.robot_positions, run.robot_times_s, axis=0)
     walker_v = run.walker_velocities()
@@ -210,6 +215,8 @@ def write_review_bag(path, run, topics=ALL_TOPICS, storage="mcap", namespace="",
         next_diagnostics = run.frame_times_s[0]
         stops_total = 0
         for k, t in enumerate(run.frame_times_s):
+            if with_clock:
+                writer.write(bag_io.TOPIC_CLOCK, bag_io.seconds_to_ns(t), bag_io.clock_cdr(bag_io.seconds_to_ns(t)))
             present = np.all(np.isfinite(run.walker_positions[k]), axis=1)
             positions = run.walker_positions[k, present]
             headings = np.arctan2(walker_v[k, present, 1], walker_v[k, present, 0])
