@@ -239,6 +239,8 @@ def _review(recorded, out, robot_radius_m, walker_half_extents_m, log):
 
 
 def add_arguments(parser):
+    parser.epilog = ("exit codes: 0 goal reached without a collision; 1 goal not reached, a collision (footprints "
+                     "overlapping in the ground truth) or a failed launch; 2 bad arguments or unreadable bags")
     parser.add_argument("--bag", default=None, help="crowd bag to replay (default: the committed courtyard bag, "
                                                     "or one generated from its scenario)")
     parser.add_argument("--out", default="out/closed_loop", help="output directory (default out/closed_loop)")
