@@ -17,6 +17,7 @@ MAX_HALF_EXTENT_M = 100.0
 REJECTED_WHAT = (f"a position that is not finite or lies beyond {MAX_ABS_POSITION_M:g} m, or a non-finite "
                  f"heading, velocity or covariance, or a footprint half-extent outside [0, {MAX_HALF_EXTENT_M:g}] m")
 
+
 def plausible_positions(xy):
     """Which rows of xy (..., 2) are finite and within MAX_ABS_POSITION_M of the origin."""
     xy = np.asarray(xy, dtype=float)
@@ -38,11 +39,9 @@ ODOM_POSITION = [0, 1]
 ODOM_USED = [0, 1, 3, 4, 5, 6] + [7 + 6 * i + j for i in (0, 1, 5) for j in (0, 1, 5)] + [43, 44, 48] + [
     49 + 6 * i + j for i in (0, 1, 5) for j in (0, 1, 5)]
 
-
-
 # The codec's layout (riskbound.ros.forecast_codec): uint32 = 6, float32 = 7 in sensor_msgs/PointField.
 CODEC_FIELDS = [(name, POINT_DTYPE.fields[name][1], 6 if name in ("track_id", "step") else 7, 1)
-                 for name in FIELD_NAMES]
+                for name in FIELD_NAMES]
 
 
 def points_plausible(points):
