@@ -10,6 +10,7 @@ import importlib
 # name → module. Add one line per benchmark.
 BENCHMARKS = {
     "planner": "riskbound.bench.planner",
+    "risk": "riskbound.bench.risk",
     "compare": "riskbound.bench.compare",
     "faults": "riskbound.bench.faults",
     "tracker": "riskbound.bench.tracker",
