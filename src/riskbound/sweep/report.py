@@ -107,12 +107,12 @@ def markdown(summary, rows, figures):
         "Biometrika 26(4), 404-413, 1934).",
         "",
         "What the columns mean: *goal reached* within the crossing's time or cycle cap; *walker contact* — "
-        "a walker's disc overlapped the robot's at least once; *near miss* — a walker's disc came within "
-        f"{NEAR_MISS_CLEARANCE_M:g} m of the robot's; *froze* — the robot stood (speed < 0.05 m/s) for "
+        "the clearance between the robot and a walker (as the closed-loop verdicts measure it) went below 0 at "
+        f"least once; *near miss* — it went below {NEAR_MISS_CLEARANCE_M:g} m; *froze* — the robot stood (speed < 0.05 m/s) for "
         f"{FREEZE_S:g} s or longer on its way; *wall/obstacle contact* — the robot's disc reached a wall or fixed "
         "obstacle of the scenario (riskbound.crowd.static_map; the closed loop does not give the planner the static "
-        "world yet); *min clearance* — median over runs of each run's smallest clearance between the robot and a "
-        "walker (as the closed-loop verdicts measure it, < 0: contact), 5th percentile in brackets [m]; "
+        "world yet); *min clearance* — median over runs of each run's smallest clearance to a walker, 5th "
+        "percentile in brackets [m]; "
         "*time to goal* — median (5th percentile) over the runs that arrived [s]; *least-violation / failed "
         "cycles* — share of all planning cycles whose plan entered a walker's ellipse (the risk bound did not "
         "hold for it) / that gave no plan (the robot braked); *solve p95* — median over runs of each run's "
