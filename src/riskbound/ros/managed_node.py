@@ -32,7 +32,7 @@ from rcl_interfaces.msg import SetParametersResult
 from rclpy.lifecycle import LifecycleNode, TransitionCallbackReturn
 from rclpy.task import Future
 
-from riskbound.ros.setting_parameters import checked_changes, parameter_descriptor
+from riskbound.ros.setting_parameters import checked_changes, checked_values, parameter_descriptor
 from riskbound.settings_table import SettingSpec
 
 UNCONFIGURED, INACTIVE, ACTIVE = "unconfigured", "inactive", "active"
@@ -110,23 +110,10 @@ class ManagedNode(LifecycleNode):
                 f"{name}={value!r}" for name, value in changes.items()))
         return SetParametersResult(successful=True)
 
-    def _checked_values(self):
-        """{name: value} of every setting, or ValueError with the first setting's reason."""
-        values = {}
-        for name, spec in self._specs.items():
-            value = self.get_parameter(name).value
-            if isinstance(spec.default, float) and isinstance(value, int) and not isinstance(value, bool):
-                value = float(value)
-            reason = spec.check(value)
-            if reason:
-                raise ValueError(reason)
-            values[name] = value
-        return values
-
     # --- transitions -----------------------------------------------------------------------------
 
     def on_configure(self, state):
-        return self._transition("configure", INACTIVE, lambda: self._configure(self._checked_values()))
+        return self._transition("configure", INACTIVE, lambda: self._configure(checked_values(self, self._specs.values())))
 
     def on_activate(self, state):
         return self._transition("activate", ACTIVE, self._activate)

@@ -37,9 +37,15 @@ def _coerced(spec, value):
 
 def declare_settings(node, specs):
     """Declare every setting on `node`; return {name: value}. ValueError names the first invalid one."""
-    values = {}
     for spec in specs:
         node.declare_parameter(spec.name, spec.default, parameter_descriptor(spec))
+    return checked_values(node, specs)
+
+
+def checked_values(node, specs):
+    """{name: value} of the declared settings, in table order. ValueError names the first invalid one."""
+    values = {}
+    for spec in specs:
         value = _coerced(spec, node.get_parameter(spec.name).value)
         reason = spec.check(value)
         if reason:

@@ -157,7 +157,7 @@ class WatchdogNode(ManagedNode):
             return
         status = DiagnosticStatus(level=DiagnosticStatus.ERROR, name=DIAGNOSTIC_NAME,
                                   hardware_id=self.get_fully_qualified_name(),
-                                  message="inactive: nothing gated, the last cmd_vel sent was zero velocity",
+                                  message="inactive: not gating, no cmd_vel until activated",
                                   values=[KeyValue(key="state", value=INACTIVE)])
         array = DiagnosticArray(status=[status])
         array.header.stamp = self.get_clock().now().to_msg()
