@@ -292,6 +292,14 @@ def test_a_failed_configure_leaves_the_planner_unconfigured_with_the_reason(tmp_
         stop_process_group(process)
 
 
+def test_switch_gives_up_on_a_node_that_does_not_answer():
+    started = time.monotonic()
+    done = switch("no_such_managed_node", "configure", "--timeout-s", "1")
+    assert done.returncode == 2
+    assert "/no_such_managed_node: lifecycle services not available within 1 s" in done.stderr
+    assert time.monotonic() - started < 30.0
+
+
 class _BrokenActuator(ManagedNode):
     """A managed node whose activation raises: it must end unconfigured, released, saying why."""
 

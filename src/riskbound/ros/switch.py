@@ -82,8 +82,9 @@ class _Session:
             self._log_lines.append(msg)
 
     def wait(self):
+        deadline = time.monotonic() + self._timeout_s
         for client in (self._get_state, self._get_transitions, self._change_state):
-            if not client.wait_for_service(timeout_sec=self._timeout_s):
+            if not client.wait_for_service(timeout_sec=max(deadline - time.monotonic(), 0.0)):
                 raise NodeUnavailable(f"{self.remote}: lifecycle services not available within "
                                       f"{self._timeout_s:g} s (is it running, a managed node, with the same "
                                       "ROS_DOMAIN_ID?)")
