@@ -1,16 +1,14 @@
-"""The `obstacle_forecast` PointCloud2: an ObstacleForecast wrapped in the message and back.
+"""The `obstacle_forecast` PointCloud2: an ObstacleForecast wrapped in the message.
 
 The point layout and the packing/unpacking of points are riskbound.forecast_schema's (no ROS
 import there, so the offline tools share it); this module only builds the message. Decoding needs
-no message type, so `cloud_to_forecast` is the schema's own function, offered here beside its
-inverse.
+no message type: riskbound.forecast_schema.cloud_to_forecast reads an rclpy message as well as
+one read from a bag.
 """
 
 from sensor_msgs.msg import PointCloud2, PointField
 
-from riskbound.forecast_schema import POINT_DTYPE, POINT_FIELDS, cloud_to_forecast, forecast_points
-
-__all__ = ["cloud_to_forecast", "forecast_to_cloud"]
+from riskbound.forecast_schema import POINT_DTYPE, POINT_FIELDS, forecast_points
 
 
 def forecast_to_cloud(forecast, header):
