@@ -3,12 +3,14 @@
 The point layout and the packing/unpacking of points are riskbound.forecast_schema's (no ROS
 import there, so the offline tools share it); this module only builds the message. Decoding needs
 no message type: riskbound.forecast_schema.cloud_to_forecast reads an rclpy message as well as
-one read from a bag.
+one read from a bag; it is offered here too, beside its inverse.
 """
 
 from sensor_msgs.msg import PointCloud2, PointField
 
-from riskbound.forecast_schema import POINT_DTYPE, POINT_FIELDS, forecast_points
+from riskbound.forecast_schema import POINT_DTYPE, POINT_FIELDS, cloud_to_forecast, forecast_points
+
+__all__ = ["cloud_to_forecast", "forecast_to_cloud"]
 
 
 def forecast_to_cloud(forecast, header):
