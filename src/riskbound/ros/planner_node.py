@@ -307,6 +307,7 @@ class PlannerNode(ManagedNode):
             "obstacles_considered": result.obstacles_considered,
             "obstacles_dropped": result.obstacles_dropped,
             "risk_per_constraint": result.risk_per_constraint, "min_margin_m": result.min_margin_m,
+            "risk_charged": result.risk_charged, "risk_static": result.risk_static, "start": result.start,
             "distance_to_goal_m": distance,
         }
         if not result.success:
@@ -322,14 +323,16 @@ class PlannerNode(ManagedNode):
                                                                     odom_stamp))
         command = model.command(result.states, result.inputs, yaw)
         self._cmd_pub.publish(plan_messages.command_to_twist(command, body_frame, stamp))
-        level = _LEVEL_OK if result.status == "solved" else _LEVEL_WARN
+        # A plan within the risk bound is fine to fly whether or not its iterations converged.
+        level = _LEVEL_OK if result.status in ("solved", "feasible_not_converged") else _LEVEL_WARN
         message = f"{result.status} in {result.solve_ms:.1f} ms, {result.iterations} iterations"
         if result.status == "least_violation":
             # infeasible_response least_violation: a usable motion, but not within the risk bound.
             values["max_violation"] = result.max_violation
-            values["reason"] = (f"no plan meets every obstacle constraint: commanding the least-violation plan "
-                                f"(largest ellipse violation {result.max_violation:.2f}, margin "
-                                f"{result.min_margin_m:.2f} m); the risk bound does not hold for it")
+            values["reason"] = (f"no plan within the risk bound: commanding the least-violation plan "
+                                f"(deepest obstacle-row violation {result.max_violation:.2f} m, margin "
+                                f"{result.min_margin_m:.2f} m, risk charged {result.risk_charged:.3g} > "
+                                f"{settings.risk_level:g}): the risk bound does not hold for it")
             message += "; " + values["reason"]
             self._warn("least_violation", values["reason"])
         if forecast_note:
