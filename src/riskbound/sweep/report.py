@@ -191,7 +191,7 @@ def plot_rates(summary, path):
         panel.set_ylim(-3, 103)
         _alpha_axis(panel, alphas)
     handles, labels = panels[0].get_legend_handles_labels()
-    figure.legend(handles, labels, loc="lower right", fontsize=7, title="cells (scenario, parameters, robot, "
+    figure.legend(handles, labels, loc="center", bbox_to_anchor=(0.83, 0.27), fontsize=7, title="cells (scenario, parameters, robot, "
                   "allocation, walker reaction)", title_fontsize=7)
     figure.suptitle(f"outcome rates against α, {100 * CONFIDENCE:.0f} % exact binomial intervals", fontsize=10)
     figure.tight_layout()
