@@ -150,7 +150,7 @@ class SequentialQP:
                 # ellipses it crosses, push it out sideways.
                 obstacle_rows[..., 0:2], obstacle_rows[..., 2] = (1.0, 0.0), states[1:, None, 0] - _UNUSED_ROW_OFFSET_M
             static_rows, static_planes = _static_rows(static_world, states[1:, 0:2], position_cov, static_backoff,
-                                                      s.static_planes)
+                                                      s.static_planes, s.robot_radius_m)
             lower, upper = input_limits(s, model)
             if trust is not None:
                 lower, upper = np.maximum(lower, inputs - trust), np.minimum(upper, inputs + trust)
@@ -167,6 +167,11 @@ class SequentialQP:
             charge = charge_plan(new_states, new_cov[1:, 0:2, 0:2], forecast, constraints, static_planes, s)
             certified = (charge.largest_pair <= budget if s.risk_allocation == "per_constraint"
                          else charge.total <= budget)
+            if static_planes is not None:
+                # The planes hold only near the points they were built around: a plan that moved
+                # further waits for the next iteration's planes before it can be certified.
+                moved_from_planes = np.linalg.norm(new_states[1:, 0:2] - states[1:, 0:2], axis=1).max()
+                certified = certified and moved_from_planes <= static_world.valid_move_m(s.robot_radius_m)
             quadratic = _quadratic(constraints, new_states[1:, 0:2])
             used = quadratic[: constraints.considered]
             depth = np.maximum(1.0 - used.min(axis=0), 0.0) if constraints.considered else np.zeros(1)
@@ -296,7 +301,7 @@ def _tangent_rows(constraints, points, robot_position):
     return rows
 
 
-def _static_rows(static_world, points, position_covariances, backoff, planes):
+def _static_rows(static_world, points, position_covariances, backoff, planes, robot_radius):
     """(N, K, 3) static rows tightened by the robot's uncertainty, and (normals, offsets) for the charge."""
     N = len(points)
     rows = np.zeros((N, planes, 3))
@@ -304,7 +309,7 @@ def _static_rows(static_world, points, position_covariances, backoff, planes):
     rows[..., 2] = points[:, None, 0] - _UNUSED_ROW_OFFSET_M
     if static_world is None or planes == 0:
         return rows, None
-    normals, offsets = static_world.halfplanes(points, planes)  # (N, K, 2), (N, K), robot radius included
+    normals, offsets = static_world.halfplanes(points, planes, robot_radius)  # (N, K, 2), (N, K)
     sigma = np.sqrt(np.maximum(np.einsum("kia,kab,kib->ki", normals, position_covariances, normals), 0.0))
     rows[..., 0:2] = normals
     rows[..., 2] = offsets + backoff * sigma
