@@ -38,7 +38,7 @@ class SweepSummary:
 
 
 def code_version():
-    """`git describe --always --dirty` of the source tree when it is a git checkout, else the
+    """`git describe --always --dirty --tags` of the source tree when it is a git checkout, else the
     package version."""
     import riskbound
 
