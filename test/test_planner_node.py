@@ -19,7 +19,7 @@ import rclpy
 from builtin_interfaces.msg import Time
 from diagnostic_msgs.msg import DiagnosticStatus
 from geometry_msgs.msg import PoseStamped, TwistStamped
-from nav_msgs.msg import Odometry, Path
+from nav_msgs.msg import OccupancyGrid, Odometry, Path
 from rclpy.executors import SingleThreadedExecutor
 from rclpy.parameter import Parameter
 from rclpy.parameter_client import AsyncParameterClient
@@ -407,6 +407,28 @@ def test_infeasible_response_decides_between_no_command_and_the_least_violation_
     wait_for(lambda: [s for s in driver.messages("status", since)
                       if values_of(s)["status"] == "solved" and s.level == DiagnosticStatus.OK], 20.0,
              "solving again with the default response")
+
+
+def test_map_in_the_wrong_frame_is_ignored_and_a_good_one_is_used(graph):
+    # The planning frame is 'odom' (REP-105); a map in another frame must not be used silently.
+    # (Runs late: a latched map stays in force, and the tests above plan without one.)
+    from riskbound.ros.map_messages import MAP_QOS, occupancy_to_message
+    from riskbound.world.occupancy import OccupancyMap
+    driver, _ = graph
+    publisher = driver.node.create_publisher(OccupancyGrid, "map", MAP_QOS)
+    try:
+        values = np.zeros((40, 60), dtype=np.int8)
+        values[0, :] = 100  # a wall along the hall's bottom edge, far from the robot's path
+        for frame, expected in (("base_link", "map ignored"), ("odom", "60×40 cells of 0.1 m in 'odom'")):
+            occupancy = OccupancyMap(0.1, 60, 40, -2.0, -6.0, 0.0, frame, values)
+            since = time.monotonic()
+            publisher.publish(occupancy_to_message(occupancy, driver.now_s()))
+            wait_for(lambda: [s for s in driver.messages("status", since) if expected in values_of(s).get("static_map", "")],
+                     10.0, f"a status saying '{expected}'")
+        since = time.monotonic()
+        wait_for(lambda: newest_ok_status(driver, since), 10.0, "an OK status planning with the map")
+    finally:
+        driver.node.destroy_publisher(publisher)
 
 
 def test_sigterm_stops_the_node_cleanly(graph):

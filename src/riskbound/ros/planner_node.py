@@ -1,4 +1,4 @@
-"""Planner node: odometry, goal and obstacle forecast in; plan, reference, command and status out.
+"""Planner node: odometry, goal, obstacle forecast and the static map in; plan, reference, command and status out.
 
 A managed node (riskbound.ros.managed_node): while active, every cycle of the timer
 (control_rate_hz) checks its inputs (riskbound.ros.planner_inputs), solves the chance-constrained
@@ -21,7 +21,7 @@ import traceback
 import numpy as np
 from diagnostic_msgs.msg import DiagnosticStatus
 from geometry_msgs.msg import PoseStamped, TwistStamped
-from nav_msgs.msg import Odometry, Path
+from nav_msgs.msg import OccupancyGrid, Odometry, Path
 from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy, qos_profile_sensor_data
 from sensor_msgs.msg import PointCloud2
 from trajectory_msgs.msg import MultiDOFJointTrajectory
@@ -32,10 +32,12 @@ from riskbound.planning.settings import PLANNER_SPECS, PlannerSettings
 from riskbound.ros import plan_messages
 from riskbound.ros.conversions import stamp_to_seconds
 from riskbound.ros.managed_node import ACTIVE, INACTIVE, UNCONFIGURED, ManagedNode
+from riskbound.ros.map_messages import MAP_QOS, occupancy_from_message
 from riskbound.ros.node_main import spin_node
 from riskbound.ros.planner_inputs import InputProblem, forecast_on_grid, goal_position, is_out_of_order, robot_state
 from riskbound.ros.throttled_warnings import ThrottledWarnings
 from riskbound.settings_table import SettingSpec
+from riskbound.world.static_world import StaticWorld
 
 NODE_NAME = "planner"
 NODE_SPECS = (
@@ -89,6 +91,8 @@ class PlannerNode(ManagedNode):
         self._goal_changed = False
         self._forecast = None  # (stamp_s, frame_id, ObstacleForecast) of the newest decodable cloud
         self._forecast_error = None  # why the newest cloud could not be decoded
+        self._static_world = None  # StaticWorld of the newest usable map
+        self._static_note = "none: no map received (walls and pillars are not avoided)"
         self._last_solve_s = None
 
     # --- lifecycle -------------------------------------------------------------------------------
@@ -110,7 +114,8 @@ class PlannerNode(ManagedNode):
         self._outputs = [self._plan_pub, self._reference_pub, self._cmd_pub]
         self._inputs = [self.create_subscription(Odometry, "odom", self._on_odom, qos_profile_sensor_data),
                         self.create_subscription(PoseStamped, "goal", self._on_goal, latched),
-                        self.create_subscription(PointCloud2, "obstacle_forecast", self._on_forecast, forecast_qos)]
+                        self.create_subscription(PointCloud2, "obstacle_forecast", self._on_forecast, forecast_qos),
+                        self.create_subscription(OccupancyGrid, "map", self._on_map, MAP_QOS)]
         self.get_logger().info(
             f"planning in '{self._planning_frame}' with {self._settings.robot_model}, "
             f"{self._settings.horizon_steps} steps of {self._settings.step_s} s at "
@@ -255,6 +260,22 @@ class PlannerNode(ManagedNode):
         except Exception:  # noqa: BLE001
             self._warn("internal_error", "forecast callback failed:\n" + traceback.format_exc())
 
+    def _on_map(self, msg):
+        """A new static world. A map that cannot be used (wrong frame, malformed, too large) is
+        ignored with a warning and the status says so: planning goes on without walls."""
+        try:
+            try:
+                occupancy = occupancy_from_message(msg, expected_frame_id=self._planning_frame)
+                self._static_world = StaticWorld(occupancy)
+                self._static_note = self._static_world.describe()
+                self.get_logger().info(f"static map: {self._static_note}")
+            except ValueError as error:
+                self._static_world = None
+                self._static_note = f"none: map ignored ({error})"
+                self._warn("map_ignored", f"map ignored, planning without walls: {error}")
+        except Exception:  # noqa: BLE001
+            self._warn("internal_error", "map callback failed:\n" + traceback.format_exc())
+
     # --- the cycle -------------------------------------------------------------------------------
 
     def _on_timer(self):
@@ -299,7 +320,7 @@ class PlannerNode(ManagedNode):
         if elapsed_s is not None and elapsed_s > settings.horizon_steps * settings.step_s:
             self._mpc.reset()  # after a gap longer than the horizon nothing of the old plan is left
             elapsed_s = None
-        result = self._mpc.solve(x0, P0, goal, forecast, elapsed_s=elapsed_s)
+        result = self._mpc.solve(x0, P0, goal, forecast, elapsed_s=elapsed_s, static_world=self._static_world)
         self._last_solve_s = now_s
         values = {
             "solve_ms": result.solve_ms, "iterations": result.iterations,
@@ -308,6 +329,7 @@ class PlannerNode(ManagedNode):
             "obstacles_dropped": result.obstacles_dropped,
             "risk_per_constraint": result.risk_per_constraint, "min_margin_m": result.min_margin_m,
             "risk_charged": result.risk_charged, "risk_static": result.risk_static, "start": result.start,
+            "static_map": self._static_note,
             "distance_to_goal_m": distance,
         }
         if not result.success:
