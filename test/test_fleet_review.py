@@ -18,7 +18,8 @@ def fleet(tmp_path_factory):
     root = tmp_path_factory.mktemp("fleet")
     synthetic.write_review_bag(root / "robot_a" / "close_pass",
                                synthetic.straight_crossing((-5.0, 0.0), (1.0, 0.0), (0.0, -6.1571), (0.0, 1.0), 10.0))
-    synthetic.write_review_bag(root / "robot_a" / "quiet", synthetic.straight_crossing((0, 0), (1, 0), (5, 5), (0, 0), 3.0))
+    synthetic.write_review_bag(root / "robot_a" / "quiet",
+                               synthetic.straight_crossing((0, 0), (1, 0), (5, 5), (0, 0), 3.0))
     synthetic.write_review_bag(root / "robot_b" / "no_odometry",
                                synthetic.straight_crossing((0, 0), (1, 0), (5, 5), (0, 0), 3.0),
                                topics=("crowd_truth", "crowd_truth_ids", "planner_status"))

@@ -81,7 +81,8 @@ def _outcome(rng, risk_level):
     reached = bool(rng.uniform() < 0.5 + risk_level)
     return CellOutcome(reached_goal=reached, time_to_goal_s=float(rng.uniform(12, 20)) if reached else None,
                        walker_contacts=int(rng.uniform() < risk_level), contact_frames=0, static_contact_frames=0,
-                       min_clearance_m=float(rng.normal(0.5 - risk_level, 0.2)), min_static_clearance_m=1.2, time_outside_bounds_s=0.0,
+                       min_clearance_m=float(rng.normal(0.5 - risk_level, 0.2)), min_static_clearance_m=1.2,
+                       time_outside_bounds_s=0.0,
                        near_misses=int(rng.integers(0, 3)), longest_stop_s=float(rng.choice([0.0, 1.5])), cycles=150,
                        least_violation_cycles=int(rng.integers(0, 10)), failed_cycles=0, solve_ms_median=2.0,
                        solve_ms_p95=5.0, solve_ms_max=9.0, cell_s=1.0)

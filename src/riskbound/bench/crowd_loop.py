@@ -7,10 +7,12 @@ For every crowd seed and robot start time one crossing: the scenario's social-fo
 simulated and reported by the synthetic detector exactly as `riskbound crowd SCENARIO --seed N`
 does (seed 7 of config/crowd_courtyard_40.yaml is the committed test bag), the tracker
 (riskbound.tracking) forecasts it, the planner core plans on the tracker's newest forecast, and a
-simulated robot follows the command for one control period in 50 Hz steps. A cycle without a plan
-sends no command and the robot brakes at its acceleration limit, as under the watchdog's stop. The
-robot leaves `--start-s` seconds into the recording, after one second of tracking, from the
-scenario's robot_start towards its robot_goal.
+simulated robot follows the command for one control period in 50 Hz steps. The planner is given the
+scenario's walls and fixed obstacles as the planner node gets them from a crowd bag's map
+(riskbound.crowd.static_map.scenario_occupancy, riskbound.world.static_world.StaticWorld). A cycle
+without a plan sends no command and the robot brakes at its acceleration limit, as under the
+watchdog's stop. The robot leaves `--start-s` seconds into the recording, after one second of
+tracking, from the scenario's robot_start towards its robot_goal.
 
 Ground truth is checked at every frame: a contact is the robot's disc (the planner's
 robot_radius_m) overlapping a walker's box (the tracker's footprint along the walker's heading):
@@ -26,7 +28,8 @@ one flat record (`CellOutcome`).
 
 What it leaves out: message latency. The ROS graph hands the planner a forecast up to one control
 period old; here it is always fresh, so the closed loop through `riskbound closedloop` is the
-judge, and this command is for comparing settings quickly (about 10 s per crossing).
+judge, and this command is for comparing settings quickly (about 1–3 s per crossing on these 2-core
+machines).
 
 Prints one line per crossing and a summary, writes DIR/crowdloop.json and DIR/crowdloop_clearance.png
 (clearance over time, one line per crossing). Exit status 0, or 2 for bad options.
@@ -199,6 +202,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
     at most `max_cycles` planning cycles (None: until the recording ends). Returns a dict of
     figures and the clearance series (times, clearance)."""
     from riskbound.crowd.static_map import scenario_occupancy, static_contacts
+    from riskbound.world.static_world import StaticWorld
     from riskbound.motion.forecast import ObstacleForecast
     from riskbound.motion.simulated_robot import SimRobotSettings, SimulatedRobot
     from riskbound.tracking.tracker import MultiTargetTracker
@@ -211,6 +215,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
     tracker = MultiTargetTracker(tracker_settings)
     footprint = (tracker_settings.footprint_half_length_m, tracker_settings.footprint_half_width_m)
     occupancy = scenario_occupancy(scenario)
+    static_world = StaticWorld(occupancy)  # the walls, as the planner node gets them from the crowd bag's map
     mpc.reset()
     grid = planner.step_s * np.arange(1, planner.horizon_steps + 1)
     period = 1.0 / FRAME_RATE_HZ
@@ -220,8 +225,9 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
     first = int(round((start_s - TRACKING_LEAD_S) * FRAME_RATE_HZ))
     leave = int(round(start_s * FRAME_RATE_HZ))
     if first < 0 or leave >= crowd.frame_count:
-        raise ValueError(f"--start-s {start_s}: must be in [{TRACKING_LEAD_S}, {(crowd.frame_count - 1) / FRAME_RATE_HZ}] "
-                         f"s (one second of tracking comes first)")
+        last_s = (crowd.frame_count - 1) / FRAME_RATE_HZ
+        raise ValueError(f"--start-s {start_s}: must be in [{TRACKING_LEAD_S}, {last_s}] s "
+                         f"(one second of tracking comes first)")
     if max_cycles is not None and max_cycles < 1:
         raise ValueError(f"max_cycles={max_cycles!r}: must be >= 1 or None")
     times, clearance, robot_path, solve_ms, statuses = [], [], [], [], {}
@@ -249,7 +255,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
         forecast = tracker.forecast().resampled(grid)
         forecast = ObstacleForecast(forecast.track_ids, grid, forecast.positions, forecast.headings,
                                     forecast.covariances, forecast.half_extents)
-        result = mpc.solve(x0, P0, goal, forecast, elapsed_s=period)
+        result = mpc.solve(x0, P0, goal, forecast, elapsed_s=period, static_world=static_world)
         solve_ms.append(float(getattr(result, "solve_ms", float("nan"))))
         status = str(getattr(result, "status", "unknown"))
         statuses[status] = statuses.get(status, 0) + 1

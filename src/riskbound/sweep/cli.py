@@ -10,7 +10,9 @@
 
 `run` runs every combination not yet in the database (one ROS-free closed loop each, the engine
 of `riskbound bench crowdloop`) and writes a row per run as it finishes; run the same command again
-after an interruption and only the missing cells run. By default an embedded Dask cluster of
+after an interruption and only the missing cells run. A cell is known by its parameters and the
+contents of its files, not by the code version (a column of its row): after changing the code,
+start a new database. By default an embedded Dask cluster of
 --workers processes on 127.0.0.1 does the work; --scheduler tcp://HOST:PORT sends it to an
 existing cluster (its workers need this package and the same files at the same paths); --serial
 runs here without Dask. A progress bar on stderr shows cells done, failed and remaining.

@@ -107,16 +107,15 @@ def markdown(summary, rows, figures):
         "Biometrika 26(4), 404-413, 1934).",
         "",
         "What the columns mean: *goal reached* within the crossing's time or cycle cap; *walker contact* — "
-        "the clearance between the robot and a walker (as the closed-loop verdicts measure it) went below 0 at "
-        f"least once; *near miss* — it went below {NEAR_MISS_CLEARANCE_M:g} m; *froze* — the robot stood (speed < 0.05 m/s) for "
-        f"{FREEZE_S:g} s or longer on its way; *wall/obstacle contact* — the robot's disc reached a wall or fixed "
-        "obstacle of the scenario (riskbound.crowd.static_map; the closed loop does not give the planner the static "
-        "world yet); *min clearance* — median over runs of each run's smallest clearance to a walker, 5th "
-        "percentile in brackets [m]; "
-        "*time to goal* — median (5th percentile) over the runs that arrived [s]; *least-violation / failed "
-        "cycles* — share of all planning cycles whose plan entered a walker's ellipse (the risk bound did not "
-        "hold for it) / that gave no plan (the robot braked); *solve p95* — median over runs of each run's "
-        "95th-percentile solve time [ms] (depends on the machine).",
+        "the clearance between the robot and a walker (as the closed-loop verdicts measure it) went below 0 "
+        f"at least once; *near miss* — it went below {NEAR_MISS_CLEARANCE_M:g} m; *froze* — the robot stood "
+        f"(speed < 0.05 m/s) for {FREEZE_S:g} s or longer on its way; *wall/obstacle contact* — the robot's disc "
+        "reached a wall or fixed obstacle of the scenario (riskbound.crowd.static_map); *min clearance* — median "
+        "over runs of each run's smallest clearance to a walker, 5th percentile in brackets [m]; *time to goal* — "
+        "median (5th percentile) over the runs that arrived [s]; *least-violation / failed cycles* — share of all "
+        "planning cycles whose plan entered a walker's ellipse (the risk bound did not hold for it) / that gave "
+        "no plan (the robot braked); *solve p95* — median over runs of each run's 95th-percentile solve time "
+        "[ms] (depends on the machine).",
         "",
     ]
     for label, by_alpha in summary.items():
@@ -139,7 +138,8 @@ def markdown(summary, rows, figures):
                       f"{100 * low['walker_contact'][1]:.0f} % → {100 * high['walker_contact'][1]:.0f} %, near miss "
                       f"{100 * low['near_miss'][1]:.0f} % → {100 * high['near_miss'][1]:.0f} %, froze "
                       f"{100 * low['froze'][1]:.0f} % → {100 * high['froze'][1]:.0f} %, median min clearance "
-                      f"{_median(low['min_clearance_m'])} → {_median(high['min_clearance_m'])} m, median time to goal "
+                      f"{_median(low['min_clearance_m'])} → {_median(high['min_clearance_m'])} m, "
+                      "median time to goal "
                       f"{_median(low['time_to_goal_s'], 1)} → {_median(high['time_to_goal_s'], 1)} s. Where two "
                       "intervals overlap, these runs do not tell the two α apart."]
         lines.append("")
@@ -191,8 +191,8 @@ def plot_rates(summary, path):
         panel.set_ylim(-3, 103)
         _alpha_axis(panel, alphas)
     handles, labels = panels[0].get_legend_handles_labels()
-    figure.legend(handles, labels, loc="center", bbox_to_anchor=(0.83, 0.27), fontsize=7, title="cells (scenario, parameters, robot, "
-                  "allocation, walker reaction)", title_fontsize=7)
+    figure.legend(handles, labels, loc="center", bbox_to_anchor=(0.83, 0.27), fontsize=7,
+                  title="cells (scenario, parameters, robot, allocation, walker reaction)", title_fontsize=7)
     figure.suptitle(f"outcome rates against α, {100 * CONFIDENCE:.0f} % exact binomial intervals", fontsize=10)
     figure.tight_layout()
     figure.savefig(path, dpi=_DPI)

@@ -2,9 +2,8 @@
 
 Each row holds the cell's parameters, the code version that ran it and the outcomes (the fields
 of riskbound.bench.crowd_loop.CellOutcome). `static_contact_frames` counts frames with the robot's
-disc on a wall or fixed obstacle of the scenario (riskbound.crowd.static_map): the closed loop does
-not give the planner the static world yet, so this column says what happens without it. A cell that raised is kept in `failures` (not in `runs`), so
-a rerun tries it again.
+disc on a wall or fixed obstacle of the scenario (riskbound.crowd.static_map). A cell that raised
+is kept in `failures` (not in `runs`), so a rerun tries it again.
 """
 
 import csv
