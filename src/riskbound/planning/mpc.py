@@ -149,8 +149,13 @@ class ChanceConstrainedMPC:
             starts = [("shifted_plan", self._shifted_inputs(elapsed_s)), ("braking", braking), ("rollout", coasting)]
         else:
             starts = [("rollout", coasting), ("braking", braking)]
-        least, least_start, iterations, failures, status = None, "", 0, 0, ""
+        least, least_start, iterations, failures, status, shown = None, "", 0, 0, "", None
         for attempt, (start, inputs) in enumerate(starts):
+            if attempt == 1:
+                # Retries cannot find what is shown not to exist: check once, before spending them.
+                shown = self._shown_infeasible(x0, P0, forecast)
+                if shown:
+                    break
             # A retry does not trust the carried split. For `joint` it starts from the loosest one,
             # α on every pair (the smallest ellipses), and iterative allocation takes risk back
             # until the charge fits: from the side where a plan exists, which the uniform split
@@ -184,7 +189,7 @@ class ChanceConstrainedMPC:
             return self._result(True, "least_violation", least, status, iterations, least_start)
         if least is None:
             verdict = "solver_failed" if failures else "time_or_iteration_cap"
-        elif self._shown_infeasible(x0, P0, forecast):
+        elif shown or (shown is None and self._shown_infeasible(x0, P0, forecast)):
             verdict = "infeasible"
         elif time.perf_counter() - started > s.deadline_s:
             verdict = "time_or_iteration_cap"
