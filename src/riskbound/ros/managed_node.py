@@ -48,8 +48,9 @@ class ManagedNode(LifecycleNode):
 
     Subclasses implement `_configure(values)` (raise ValueError naming an invalid value),
     `_activate()`, `_deactivate()`, `_release()` (undo configure and activate; must also work
-    after a partial configure), `_apply_changes(changes)` for parameter changes once configured (returns a
-    rejection reason or None), and may override `_announce(state, reason)` to publish their state.
+    after a partial configure), `_apply_changes(changes)` for parameter changes once configured
+    (returns a rejection reason or None), and may override `_announce(state, reason)` to publish
+    their state.
     """
 
     def __init__(self, node_name, specs, **kwargs):
