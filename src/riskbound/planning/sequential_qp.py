@@ -34,8 +34,9 @@ from riskbound.risk.allocation import REALLOCATION_TARGET, reallocate
 from riskbound.risk.charge import box_risk, distant_risk, halfplane_risk
 from riskbound.risk.quantile import chance_constraint_backoff
 
-# A plan that moves less than this between iterations [m] has converged.
-CONVERGED_MOVE_M = 1e-3
+# A plan that moves less than this between iterations [m] has converged: a centimetre, well inside the
+# robot disc and the walkers' footprints, saves an iteration in most warm cycles (measured).
+CONVERGED_MOVE_M = 1e-2
 # A pair binds when the plan is within this factor of its ellipse (dᵀAd ≤ 1.1: about 5 % of the radius).
 BINDING_QUADRATIC = 1.1
 # Unicycle trust region: largest change of acceleration [m/s²] and turn rate [rad/s] per iteration.
