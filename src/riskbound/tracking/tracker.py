@@ -13,7 +13,7 @@ One call per scan (all detections sharing one stamp, in the planning frame):
 3. Association: global nearest neighbour inside chi-square gates (association.py, gating.py),
    confirmed tracks first, tentative ones with the detections left over: a track that missed a
    scan is not robbed of its person by the track that miss started.
-4. Update: the Kalman update (filters.py). A track starts in the constant-velocity filter with a
+4. Update: the Kalman update (motion_model.py). A track starts in the constant-velocity filter with a
    prior on its unknown velocity; with the unicycle model it moves to the unicycle state once its
    direction of travel is known (or its heading was measured).
 5. Lifecycle: M-of-N confirmation, deletion of tracks that failed it (lifecycle.py); unmatched
