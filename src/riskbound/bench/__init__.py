@@ -12,7 +12,7 @@ BENCHMARKS = {
     "planner": "riskbound.bench.planner",
     "risk": "riskbound.bench.risk",
     "compare": "riskbound.bench.compare",
-    "faults": "riskbound.bench.faults",
+    "faults": "riskbound.ros.fault_benchmark",
     "tracker": "riskbound.bench.tracker",
     "crowdloop": "riskbound.bench.crowd_loop",
 }
