@@ -35,7 +35,7 @@ def test_short_run_reports_every_crossing(tmp_path):
     for crossing in report["crossings"]:
         assert crossing["cycles"] > 0 and np.isfinite(crossing["min_clearance_m"])
         assert sum(crossing["statuses"].values()) == crossing["cycles"]
-    assert report["planner"]["infeasible_response"] == "least_violation"  # config/drone_closed_loop.yaml
+    assert report["planner"]["infeasible_response"] == "least_violation"  # config/drone.yaml
     assert (tmp_path / "crowdloop_clearance.png").read_bytes()[:8] == PNG_MAGIC
 
 

@@ -27,7 +27,7 @@ from riskbound.sweep.store import TIMING_COLUMNS, ResultStore
 REPO = Path(__file__).resolve().parents[1]
 DASK = Path(sys.executable).with_name("dask")
 SCENARIO = str(REPO / "config" / "crowd_courtyard_40.yaml")
-PARAMS = str(REPO / "config" / "drone_closed_loop.yaml")
+PARAMS = str(REPO / "config" / "drone.yaml")
 STEADY = {"control_rate_hz": 1.0}  # solver wall-time cap 0.9 s: outcomes independent of machine load
 
 

@@ -17,7 +17,7 @@ from riskbound.sweep.store import RUN_COLUMNS, ResultStore
 
 REPO = Path(__file__).resolve().parents[1]
 SCENARIO = str(REPO / "config" / "crowd_courtyard_40.yaml")
-PARAMS = str(REPO / "config" / "drone_closed_loop.yaml")
+PARAMS = str(REPO / "config" / "drone.yaml")
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 
 

@@ -14,9 +14,9 @@ DIR/recorded, the node logs DIR/logs. `make demo` is this command with its defau
 
 Default bag: the committed test/data/crowd_courtyard_40 when running from the source tree,
 otherwise a fresh one generated from config/crowd_courtyard_40.yaml with its committed seed.
-Default parameters: config/drone_closed_loop.yaml (see there why not config/drone.yaml), replayed
-at a quarter of real time (--speed 0.25). The crossing takes about 15 s of bag time, so about a
-minute of wall time plus start-up (a whole 60 s bag would take 4 minutes).
+Default parameters: config/drone.yaml, the shipped multirotor file, replayed in real time
+(--speed 1.0), as on a robot: every node keeps to the bag's clock on the machine's own time. The
+crossing takes about 20 s of bag time, so about half a minute of wall time plus start-up.
 
 Exit codes: 0 goal reached without a collision; 1 goal not reached or a collision (footprints
 overlapping in the ground truth), or the launch failed; 2 bad arguments or unreadable bags.
@@ -43,13 +43,9 @@ from riskbound.logs.run_summary import plot_run, summarise_run, summary_text
 COMMITTED_BAG = "test/data/crowd_courtyard_40"
 SCENARIO = "config/crowd_courtyard_40.yaml"
 SCENARIO_SEED = 7  # the committed bag's seed (test/data/crowd_courtyard_40/metadata.yaml)
-DEFAULT_PARAMS = "config/drone_closed_loop.yaml"
-# A quarter of real time: every node runs on the bag's clock, so the seven node processes get four
-# times the wall time per simulated second and stay on schedule on a shared 2-core machine. The
-# solver's wall-time cap is not scaled, so solves are judged as on the robot. Measured at half
-# speed, one run in five lost cycles to a busy machine (solves over the cap, watchdog stops) and
-# ended with contacts; at a quarter, none of five.
-DEFAULT_SPEED = 0.25
+DEFAULT_PARAMS = "config/drone.yaml"
+# Real time: the planner's solves and the nodes' timers are judged as on the robot.
+DEFAULT_SPEED = 1.0
 LAUNCH_FILE = "crowd_replay.launch.xml"
 EXIT_FAILED, EXIT_USAGE = 1, 2
 # After SIGINT the runner needs its own stop timeouts (5 s + 5 s) and a margin to report.

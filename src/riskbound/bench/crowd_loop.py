@@ -18,7 +18,7 @@ Ground truth is checked at every frame: a contact is the robot's disc (the plann
 robot_radius_m) overlapping a walker's box (the tracker's footprint along the walker's heading):
 riskbound.clearance, as in `riskbound closedloop` and `riskbound review`. Parameters come from the
 planner, tracker and sim_robot sections of a ROS parameter file (default
-config/drone_closed_loop.yaml); --set and --tracker-set override them.
+config/drone.yaml); --set and --tracker-set override them.
 
 The same engine runs one cell of `riskbound sweep` (`run_cell`): there the walkers may react to
 the robot (`reaction_strength_m2_s2` > 0, riskbound.crowd.social_force.RobotPresence; the crowd is
@@ -48,7 +48,7 @@ import yaml
 from riskbound.clearance import disc_box_clearance
 from riskbound.planning.settings import PlannerSettings
 
-DEFAULT_PARAMS = "config/drone_closed_loop.yaml"
+DEFAULT_PARAMS = "config/drone.yaml"
 DEFAULT_SCENARIO = "config/crowd_courtyard_40.yaml"
 FRAME_RATE_HZ = 10.0   # the crowd recording rate and the control rate of the loop
 ROBOT_SUBSTEPS = 5     # simulated-robot steps per control period (50 Hz, as the sim_robot node)
@@ -220,7 +220,7 @@ def crossing(planner, tracker_settings, max_accel, scenario, crowd, start_s, mpc
     grid = planner.step_s * np.arange(1, planner.horizon_steps + 1)
     period = 1.0 / FRAME_RATE_HZ
     # Odometry covariance: 0.02 m position and 0.02 m/s velocity std, the sim_robot node's pose_std_m
-    # and twist_std_mps in config/drone_closed_loop.yaml.
+    # and twist_std_mps in config/drone.yaml.
     P0 = np.diag([0.02**2, 0.02**2, 0.02**2, 0.02**2])
     first = int(round((start_s - TRACKING_LEAD_S) * FRAME_RATE_HZ))
     leave = int(round(start_s * FRAME_RATE_HZ))

@@ -34,7 +34,7 @@ from pathlib import Path
 EXIT_FAILED, EXIT_USAGE = 1, 2
 DEFAULT_RISK_LEVELS = (0.01, 0.05, 0.1, 0.2)
 DEFAULT_SCENARIO = "config/crowd_courtyard_40.yaml"
-DEFAULT_PARAMS = "config/drone_closed_loop.yaml"
+DEFAULT_PARAMS = "config/drone.yaml"
 PERSON_REACTION_M2_S2 = 2.1  # the pedestrian V⁰ of riskbound.crowd.social_force
 
 
