@@ -18,8 +18,17 @@ Default parameters: config/drone.yaml, the shipped multirotor file, replayed in 
 (--speed 1.0), as on a robot: every node keeps to the bag's clock on the machine's own time. The
 crossing takes about 20 s of bag time, so about half a minute of wall time plus start-up.
 
-Exit codes: 0 goal reached without a collision; 1 goal not reached or a collision (footprints
-overlapping in the ground truth), or the launch failed; 2 bad arguments or unreadable bags.
+The verdict (riskbound.logs.run_summary.RunSummary.failures) knows the robot type from the
+parameter file's planner robot_model (the planner's default, double_integrator, when the file does
+not set it): the run passes when the goal is reached, the robot's disc never overlaps the map's
+walls and obstacles, its centre never leaves the scenario's bounds, and no walker's footprint
+overlaps it, except that a unicycle (a ground robot, slower than a brisk walker) is allowed
+contacts in which a replayed walker, who cannot react to it, moved into it; one in which the
+robot moved toward the walker fails it (riskbound.logs.contact_geometry).
+
+Exit codes: 0 passed (above); 1 failed: goal not reached, a walker contact the robot type is not
+allowed, a static contact, time outside the bounds, or the launch failed; 2 bad arguments or
+unreadable bags.
 DDS discovery stays on this machine (ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST is set for the
 nodes when the caller has not set it).
 """
@@ -143,7 +152,8 @@ def run_closed_loop(out_dir, bag=None, params_file=None, speed=DEFAULT_SPEED, ti
     watchdog and sim_robot sections (None: DEFAULT_PARAMS); speed: replay speed factor;
     time_limit_s: wall-time limit of the run, start-up included; review: also write the review
     tool's report of the recording into out_dir/review.
-    ValueError / BagError for bad arguments or bags.
+    The verdict (ClosedLoopResult.passed) takes the robot type from the parameter file's planner
+    robot_model (module docstring). ValueError / BagError for bad arguments or bags.
     """
     started = time.monotonic()
     out_dir = Path(out_dir).resolve()
@@ -157,6 +167,7 @@ def run_closed_loop(out_dir, bag=None, params_file=None, speed=DEFAULT_SPEED, ti
     robot_radius_m = float(planner.get("robot_radius_m", 0.3))
     walker_half_extents_m = _walker_footprint(parameters.get("tracker", {}))
     control_rate_hz = float(planner.get("control_rate_hz", 10.0))
+    robot_model = _robot_model(planner)
     metadata = read_custom_data(bag)
     if "robot_start" not in metadata or "robot_goal" not in metadata:
         raise BagError(f"{bag}: no robot_start/robot_goal in the bag's metadata (write it with riskbound crowd)")
@@ -201,7 +212,7 @@ def run_closed_loop(out_dir, bag=None, params_file=None, speed=DEFAULT_SPEED, ti
     log(f"launch ended with exit code {code} after {time.monotonic() - started:.0f} s; analysing {recorded}")
 
     summary, series = summarise_run(recorded, bag, goal, robot_radius_m, control_rate_hz, goal_tolerance_m,
-                                    walker_half_extents_m)
+                                    walker_half_extents_m, robot_model=robot_model)
     text = summary_text(summary)
     files = [out_dir / "summary.txt", out_dir / "summary.json"]
     files[0].write_text(text + "\n", encoding="utf-8")
@@ -210,6 +221,17 @@ def run_closed_loop(out_dir, bag=None, params_file=None, speed=DEFAULT_SPEED, ti
     if review:
         files.append(_review(recorded, out_dir / "review", robot_radius_m, walker_half_extents_m, log))
     return ClosedLoopResult(summary, code, time.monotonic() - started, out_dir, files + [recorded, logs])
+
+
+def _robot_model(planner):
+    """The planner section's robot_model, or the planner's default: the verdict's robot type."""
+    from riskbound.planning.settings import SPECS_BY_NAME
+
+    spec = SPECS_BY_NAME["robot_model"]
+    value = planner.get("robot_model", spec.default)
+    if value not in spec.choices:
+        raise ValueError(f"planner robot_model={value!r} in the parameter file: must be one of {list(spec.choices)}")
+    return value
 
 
 def _walker_footprint(tracker):
@@ -235,8 +257,10 @@ def _review(recorded, out, robot_radius_m, walker_half_extents_m, log):
 
 
 def add_arguments(parser):
-    parser.epilog = ("exit codes: 0 goal reached without a collision; 1 goal not reached, a collision (footprints "
-                     "overlapping in the ground truth) or a failed launch; 2 bad arguments or unreadable bags")
+    parser.epilog = ("exit codes: 0 passed; 1 failed: goal not reached, a walker contact the robot type is not "
+                     "allowed (any for a multirotor, one moving into the walker for a ground robot), a contact "
+                     "with walls or obstacles, time outside the bounds, or a failed launch; 2 bad arguments or "
+                     "unreadable bags")
     parser.add_argument("--bag", default=None, help="crowd bag to replay (default: the committed courtyard bag, "
                                                     "or one generated from its scenario)")
     parser.add_argument("--out", default="out/closed_loop", help="output directory (default out/closed_loop)")

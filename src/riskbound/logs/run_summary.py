@@ -12,6 +12,20 @@ the run (refined between frames), the number `riskbound review` reports for the 
 Planner cycles are the /planner_status
 messages (one per cycle, whatever its outcome); the cycles expected are the control rate times
 the span between the first and the last status (log times, i.e. the recorder's simulated clock).
+
+Contacts and stops (riskbound.logs.contact_geometry): every walker contact (consecutive frames in
+contact with one walker) classified at its onset as the robot moving into the walker or the
+walker into the robot, with both speeds; the longest stop while the goal is open. Static world
+(riskbound.crowd.static_map, with the crowd bag's /map and the bounds of its metadata): static
+contacts (intervals of odometry samples in which the robot's disc overlaps occupied cells) and the
+time the robot's centre spent outside the bounds.
+
+The verdict (RunSummary.failures) depends on the robot: goal reached, no static contact, no time
+outside the bounds, and no walker contact for a multirotor (double_integrator); a ground robot
+(unicycle) is slower than a brisk walker, so a replayed walker, who cannot react to it, can catch
+it from behind: it fails only on contacts in which it moved into the walker. summarise_run takes
+the robot model as an argument (`riskbound closedloop` passes the parameter file's planner
+robot_model).
 """
 
 import json
@@ -19,9 +33,14 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 import numpy as np
+import yaml
 
-from riskbound.clearance import closest_approach, disc_box_clearance
+from riskbound.clearance import closest_approach
+from riskbound.crowd.static_map import static_clearance, static_contacts
 from riskbound.logs.bag_io import BagError, read_crowd_bag, read_messages
+from riskbound.logs.contact_geometry import (ROBOT_INTO_WALKER, ROBOT_INTO_WALKER_MPS, STANDING_SPEED_MPS,
+                                             frame_clearances, runs_of, stops, walker_contacts)
+from riskbound.motion.heading import quaternion_xyzw_to_yaw
 
 STATUS_TOPIC = "/planner_status"
 ODOM_TOPIC = "/odom"
@@ -31,6 +50,8 @@ DIAGNOSTICS_TOPIC = "/diagnostics"
 SOLVE_STATUSES_EXCLUDED = {"goal_reached", "no_odometry", "no_goal", "no_forecast", "stale_odometry",
                            "stale_forecast", "bad_odometry", "bad_forecast", "bad_goal", "wrong_frame",
                            "internal_error"}
+# Robot models whose verdict tolerates walker-into-robot contacts (module docstring).
+ROBOTS_WALKERS_MAY_CATCH = ("unicycle",)
 
 
 @dataclass
@@ -60,10 +81,42 @@ class RunSummary:
     mean_speed_mps: float
     watchdog_stops_total: int
     message_counts: dict = field(default_factory=dict)
+    robot_model: str = "double_integrator"
+    solve_ms_p99: float = float("nan")
+    walker_contacts: list = field(default_factory=list)   # contact_geometry.WalkerContact, onset order
+    robot_into_walker_contacts: int = 0
+    walker_into_robot_contacts: int = 0
+    robot_into_walker_threshold_mps: float = ROBOT_INTO_WALKER_MPS
+    static_map_checked: bool = False   # False: the crowd bag has no /map and no bounds
+    static_contacts: int = 0           # intervals of odometry samples with the disc on occupied cells
+    static_contact_s: float = 0.0
+    min_static_clearance_m: float = float("inf")
+    time_outside_bounds_s: float = 0.0
+    longest_stop_s: float = 0.0        # while the goal is open (contact_geometry)
+    longest_stop_onset_s: float = float("nan")
+    stops: int = 0
+    start_wait_s: float = 0.0
+    standing_speed_mps: float = STANDING_SPEED_MPS
+
+    def failures(self):
+        """Why the run fails, in words; empty when it passes (module docstring)."""
+        reasons = [] if self.goal_reached else [f"goal not reached (closest {self.min_distance_to_goal_m:.2f} m)"]
+        if self.robot_model in ROBOTS_WALKERS_MAY_CATCH:
+            if self.robot_into_walker_contacts:
+                reasons.append(f"{self.robot_into_walker_contacts} walker contacts with the robot moving into the walker")
+        elif self.collisions:
+            reasons.append(f"{len(self.walker_contacts)} walker contacts ({self.robot_into_walker_contacts} with the "
+                           f"robot moving into the walker; {self.collisions} truth frames with overlapping footprints)")
+        if self.static_contacts:
+            reasons.append(f"{self.static_contacts} static contacts ({self.static_contact_s:.2f} s on walls or "
+                           "obstacles)")
+        if self.time_outside_bounds_s > 0.0:
+            reasons.append(f"{self.time_outside_bounds_s:.2f} s outside the bounds")
+        return reasons
 
     @property
     def passed(self):
-        return self.goal_reached and self.collisions == 0
+        return not self.failures()
 
     def to_json(self):
         return json.dumps(asdict(self), indent=2, default=_json_default)
@@ -103,12 +156,29 @@ def _float(text):
         return float("nan")
 
 
+def attempted_solve_ms(status_words, solve_ms):
+    """The solve times [ms] of the cycles in which a solve was attempted (finite ones only)."""
+    solve_ms = np.asarray(solve_ms, dtype=float)
+    attempted = np.array([w not in SOLVE_STATUSES_EXCLUDED and w != "" for w in status_words], dtype=bool)
+    return solve_ms[attempted & np.isfinite(solve_ms)] if len(solve_ms) else np.zeros(0)
+
+
+def read_solve_ms(recorded_bag):
+    """attempted_solve_ms of a recorded run's /planner_status messages."""
+    values = [_status_values(message) for _, _, _, message in read_messages(recorded_bag, [STATUS_TOPIC])]
+    return attempted_solve_ms([v.get("status", "") for v in values], [_float(v.get("solve_ms")) for v in values])
+
+
 def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate_hz, goal_tolerance_m=0.3,
-                  walker_half_extents_m=(0.25, 0.2)):
+                  walker_half_extents_m=(0.25, 0.2), robot_model="double_integrator"):
     """(RunSummary, RunSeries) of a recorded run. BagError when a bag is unreadable or lacks
     odometry or planner statuses. walker_half_extents_m: (half_length, half_width) of each
-    walker's box, the tracker's footprint."""
-    odom_t, odom_xy, status_t, status, cmd_count, stops_total, counts = [], [], [], [], 0, 0, {}
+    walker's box, the tracker's footprint; robot_model: the planner's, for the verdict (module
+    docstring)."""
+    if robot_model not in ("double_integrator", *ROBOTS_WALKERS_MAY_CATCH):
+        raise ValueError(f"robot_model={robot_model!r}: must be 'double_integrator' or 'unicycle'")
+    odom_t, odom_xy, odom_v, status_t, status, cmd_count, stops_total, counts = [], [], [], [], [], 0, 0, {}
+    odom_frames = set()
     for topic, _, time_ns, message in read_messages(recorded_bag, [ODOM_TOPIC, STATUS_TOPIC, CMD_TOPIC,
                                                                    DIAGNOSTICS_TOPIC]):
         counts[topic] = counts.get(topic, 0) + 1
@@ -116,6 +186,10 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
             stamp = message.header.stamp
             odom_t.append(stamp.sec + 1e-9 * stamp.nanosec)
             odom_xy.append((message.pose.pose.position.x, message.pose.pose.position.y))
+            q = message.pose.pose.orientation
+            linear = message.twist.twist.linear
+            odom_v.append((q.x, q.y, q.z, q.w, linear.x, linear.y))
+            odom_frames.add(message.header.frame_id)
         elif topic == STATUS_TOPIC:
             status_t.append(time_ns * 1e-9)
             status.append(_status_values(message))
@@ -133,10 +207,15 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
     order = np.argsort(odom_t, kind="stable")
     odom_t = np.asarray(odom_t)[order]
     odom_xy = np.asarray(odom_xy, dtype=float).reshape(-1, 2)[order]
+    # The twist is in the body frame (child_frame_id): turned into the odometry frame by the yaw.
+    twist = np.asarray(odom_v, dtype=float).reshape(-1, 6)[order]
+    yaw, body_x, body_y = quaternion_xyzw_to_yaw(twist[:, :4]), twist[:, 4], twist[:, 5]
+    odom_velocity = np.column_stack([np.cos(yaw) * body_x - np.sin(yaw) * body_y,
+                                     np.sin(yaw) * body_x + np.cos(yaw) * body_y])
     # As the review reads odometry: non-finite samples and repeated stamps carry no position.
     keep = np.all(np.isfinite(odom_xy), axis=1)
     keep[1:] &= np.diff(odom_t) > 0.0
-    odom_t, odom_xy = odom_t[keep], odom_xy[keep]
+    odom_t, odom_xy, odom_velocity = odom_t[keep], odom_xy[keep], np.nan_to_num(odom_velocity[keep])
     if len(odom_t) < 2:
         raise BagError(f"{recorded_bag}: fewer than two usable {ODOM_TOPIC} messages: no robot path")
     t0 = odom_t[0]
@@ -150,10 +229,13 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
     truth_ids = [i for i, keep in zip(crowd.truth_ids, inside) if keep]
     robot_at_truth = np.column_stack([np.interp(truth_t, odom_t, odom_xy[:, 0]),
                                       np.interp(truth_t, odom_t, odom_xy[:, 1])])
-    clearance = np.array([
-        np.min(disc_box_clearance(robot, robot_radius_m, walkers, np.nan_to_num(headings), extents))
-        if len(walkers) else np.inf
-        for robot, walkers, headings in zip(robot_at_truth, truth_positions, truth_headings)])
+    velocity_at_truth = np.column_stack([np.interp(truth_t, odom_t, odom_velocity[:, 0]),
+                                         np.interp(truth_t, odom_t, odom_velocity[:, 1])])
+    per_walker = frame_clearances(robot_at_truth, robot_radius_m, truth_positions, truth_headings, extents)
+    clearance = np.array([np.min(values) if len(values) else np.inf for values in per_walker])
+    contacts = walker_contacts(truth_t - t0, truth_ids, truth_positions, per_walker, robot_at_truth,
+                               velocity_at_truth)
+    static = static_world_figures(crowd, odom_t, odom_xy, robot_radius_m, odom_frames)
     walkers_per_frame = [len(ids) for ids in truth_ids]
     approach = closest_approach(
         odom_t, odom_xy, robot_radius_m, np.repeat(truth_t, walkers_per_frame),
@@ -168,11 +250,13 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
     steps = np.linalg.norm(np.diff(odom_xy, axis=0), axis=1)
     duration_s = odom_t[-1] - t0
 
+    stood = stops(odom_t - t0, np.hypot(odom_velocity[:, 0], odom_velocity[:, 1]),
+                  odom_t[arrived[0]] - t0 if len(arrived) else None)
+
     status_t = np.asarray(status_t)
     words = [values.get("status", "") for values in status]
     solve_ms = np.array([_float(values.get("solve_ms")) for values in status])
-    attempted = np.array([w not in SOLVE_STATUSES_EXCLUDED and w != "" for w in words], dtype=bool)
-    solved_ms = solve_ms[attempted & np.isfinite(solve_ms)]
+    solved_ms = attempted_solve_ms(words, solve_ms)
     expected = int(round((status_t[-1] - status_t[0]) * control_rate_hz)) + 1
     status_counts = {}
     for word in words:
@@ -200,6 +284,14 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
         mean_speed_mps=float(np.sum(steps) / duration_s) if duration_s > 0 else 0.0,
         watchdog_stops_total=stops_total,
         message_counts=dict(sorted({**counts, CMD_TOPIC: cmd_count}.items())),
+        robot_model=robot_model,
+        solve_ms_p99=float(np.percentile(solved_ms, 99)) if len(solved_ms) else float("nan"),
+        walker_contacts=contacts,
+        robot_into_walker_contacts=sum(c.who == ROBOT_INTO_WALKER for c in contacts),
+        walker_into_robot_contacts=sum(c.who != ROBOT_INTO_WALKER for c in contacts),
+        longest_stop_s=stood.longest_stop_s, longest_stop_onset_s=stood.longest_stop_onset_s, stops=stood.stops,
+        start_wait_s=stood.start_wait_s,
+        **static,
     )
     series = RunSeries(odom_t=odom_t - t0, odom_xy=odom_xy, truth_t=truth_t - t0, truth_positions=truth_positions,
                        truth_headings=truth_headings, truth_ids=truth_ids, clearance_t=truth_t - t0,
@@ -208,12 +300,40 @@ def summarise_run(recorded_bag, crowd_bag, goal_xy, robot_radius_m, control_rate
     return summary, series
 
 
+def static_world_figures(crowd, odom_t, odom_xy, robot_radius_m, odom_frames):
+    """RunSummary's static fields from the crowd bag's /map and bounds; {} when it has neither."""
+    occupancy, text = crowd.static_map, crowd.metadata.get("bounds")
+    if occupancy is None or text is None:
+        return {}
+    try:
+        bounds = [float(v) for v in yaml.safe_load(text)]
+    except (TypeError, ValueError, yaml.YAMLError):
+        raise BagError(f"{crowd.path}: bounds={text!r} in the metadata is not [x_min, x_max, y_min, y_max]") from None
+    if odom_frames - {occupancy.frame_id}:
+        raise BagError(f"{crowd.path}: /map is in frame {occupancy.frame_id!r}, the odometry in "
+                       f"{sorted(odom_frames)}: the static contacts cannot be checked")
+    try:
+        figures = static_contacts(odom_t, odom_xy, robot_radius_m, occupancy, bounds)
+    except ValueError as error:
+        raise BagError(f"{crowd.path}: {error}") from None
+    in_contact = static_clearance(odom_xy, robot_radius_m, occupancy) < 0.0
+    held = np.r_[np.diff(odom_t), 0.0]
+    return dict(static_map_checked=True, static_contacts=len(runs_of(in_contact)),
+                static_contact_s=float(np.sum(held[in_contact])), min_static_clearance_m=figures.min_clearance_m,
+                time_outside_bounds_s=figures.time_outside_bounds_s)
+
+
 def summary_text(summary):
     """A few lines for people: the verdict and the figures that matter."""
     s = summary
     verdict = "PASSED" if s.passed else "FAILED"
-    reasons = ([] if s.goal_reached else [f"goal not reached (closest {s.min_distance_to_goal_m:.2f} m)"]) + (
-        [f"{s.collisions} truth frames with overlapping footprints"] if s.collisions else [])
+    reasons = s.failures()
+    by_who = (f"{s.robot_into_walker_contacts} with the robot moving into the walker (> "
+              f"{s.robot_into_walker_threshold_mps:g} m/s toward it at onset), {s.walker_into_robot_contacts} "
+              "with the walker moving into the robot")
+    static = (f"{s.static_contacts} static contacts ({s.static_contact_s:.2f} s), minimum static clearance "
+              f"{s.min_static_clearance_m:.3f} m, {s.time_outside_bounds_s:.2f} s outside the bounds"
+              if s.static_map_checked else "not checked (the crowd bag has no /map or no bounds)")
     lines = [
         f"closed loop {verdict}" + (f": {'; '.join(reasons)}" if reasons else ""),
         f"  goal ({s.goal_xy[0]:.1f}, {s.goal_xy[1]:.1f}) " + (
@@ -223,8 +343,17 @@ def summary_text(summary):
         f"{s.min_clearance_walker_id} (robot disc {s.robot_radius_m:g} m against walker boxes "
         f"{s.walker_half_extents_m[0]:g} × {s.walker_half_extents_m[1]:g} m, {s.truth_frames_checked} truth frames), "
         f"collisions {s.collisions}",
+        f"  walker contacts: {len(s.walker_contacts)}: {by_who}",
+        *[f"    walker {c.walker_id} at t={c.onset_s:.1f} s for {c.frames} frames (min {c.min_clearance_m:.3f} m): "
+          f"{c.who.replace('_', ' ')}; robot {c.robot_speed_mps:.2f} m/s ({c.robot_toward_walker_mps:+.2f} toward), "
+          f"walker {c.walker_speed_mps:.2f} m/s ({c.walker_toward_robot_mps:+.2f} toward)" for c in s.walker_contacts],
+        f"  static world: {static}",
+        f"  stops while the goal is open (speed < {s.standing_speed_mps:g} m/s): {s.stops}, longest "
+        f"{s.longest_stop_s:.1f} s" + (f" from t={s.longest_stop_onset_s:.1f} s" if s.stops else "")
+        + f"; waiting at the start {s.start_wait_s:.1f} s ({s.robot_model})",
         f"  planner: {s.planner_cycles} cycles reported of {s.planner_cycles_expected} expected, {s.solves} solves, "
-        f"solve ms median {s.solve_ms_median:.1f}, p95 {s.solve_ms_p95:.1f}, max {s.solve_ms_max:.1f}",
+        f"solve ms median {s.solve_ms_median:.1f}, p95 {s.solve_ms_p95:.1f}, p99 {s.solve_ms_p99:.1f}, "
+        f"max {s.solve_ms_max:.1f}",
         "  planner statuses: " + ", ".join(f"{k or '(none)'} {v}" for k, v in s.planner_status_counts.items()),
         f"  watchdog stops: {s.watchdog_stops_total}",
     ]
@@ -270,7 +399,7 @@ def plot_run(summary, series, out_dir):
     axes.set_xlabel("x [m]")
     axes.set_ylabel("y [m]")
     axes.set_title(f"closed loop: robot and walkers ({'goal reached' if summary.goal_reached else 'goal NOT reached'}, "
-                   f"{summary.collisions} collisions)")
+                   f"{summary.collisions} collision frames)")
     axes.legend(loc="upper left", fontsize=8)
     path = out_dir / "trajectories.png"
     figure.savefig(path, dpi=120, bbox_inches="tight")
