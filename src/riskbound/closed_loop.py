@@ -167,7 +167,7 @@ def run_closed_loop(out_dir, bag=None, params_file=None, speed=DEFAULT_SPEED, ti
     robot_radius_m = float(planner.get("robot_radius_m", 0.3))
     walker_half_extents_m = _walker_footprint(parameters.get("tracker", {}))
     control_rate_hz = float(planner.get("control_rate_hz", 10.0))
-    robot_model = _robot_model(planner)
+    robot_model = robot_model_of(planner)
     metadata = read_custom_data(bag)
     if "robot_start" not in metadata or "robot_goal" not in metadata:
         raise BagError(f"{bag}: no robot_start/robot_goal in the bag's metadata (write it with riskbound crowd)")
@@ -223,7 +223,7 @@ def run_closed_loop(out_dir, bag=None, params_file=None, speed=DEFAULT_SPEED, ti
     return ClosedLoopResult(summary, code, time.monotonic() - started, out_dir, files + [recorded, logs])
 
 
-def _robot_model(planner):
+def robot_model_of(planner):
     """The planner section's robot_model, or the planner's default: the verdict's robot type."""
     from riskbound.planning.settings import SPECS_BY_NAME
 
