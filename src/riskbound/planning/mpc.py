@@ -14,9 +14,11 @@ reach). A plan is usable within the bound only if that charge is at most α (joi
 pair's is (per_constraint): the ellipses are how the plan keeps away, the charge is what is
 certified (`risk_charged` in the result and the status).
 
-A cycle that finds no certified plan from its first start (the shifted previous plan, or the
-zero-input rollout on a cold start) retries from the braking trajectory with the uniform risk
-split, within the same deadline. Then:
+Every cycle first checks whether the problem is shown infeasible (`_shown_infeasible`, a few array
+operations); if so, `stop` returns at once and `least_violation` searches from one start only.
+Otherwise a cycle that finds no certified plan from its first start (the shifted previous plan, or
+the zero-input rollout on a cold start) retries from the braking trajectory and from coasting,
+within the same deadline. Then:
 
 * solved / feasible_not_converged: a certified plan (converged, or the iteration or time budget
   ended first); `start` says which start it came from;
@@ -149,13 +151,15 @@ class ChanceConstrainedMPC:
             starts = [("shifted_plan", self._shifted_inputs(elapsed_s)), ("braking", braking), ("rollout", coasting)]
         else:
             starts = [("rollout", coasting), ("braking", braking)]
-        least, least_start, iterations, failures, status, shown = None, "", 0, 0, "", None
+        # What is shown not to exist is not searched for (the check costs a rollout and a few
+        # array operations): no solve at all under `stop`, one start for the least-violation plan.
+        shown = self._shown_infeasible(x0, P0, forecast)
+        if shown and not self.soft:
+            return PlanResult(False, "infeasible", start="")
+        least, least_start, iterations, failures, status = None, "", 0, 0, ""
         for attempt, (start, inputs) in enumerate(starts):
-            if attempt == 1:
-                # Retries cannot find what is shown not to exist: check once, before spending them.
-                shown = self._shown_infeasible(x0, P0, forecast)
-                if shown:
-                    break
+            if attempt == 1 and shown:
+                break
             # A retry does not trust the carried split. For `joint` it starts from the loosest one,
             # α on every pair (the smallest ellipses), and iterative allocation takes risk back
             # until the charge fits: from the side where a plan exists, which the uniform split
@@ -189,7 +193,7 @@ class ChanceConstrainedMPC:
             return self._result(True, "least_violation", least, status, iterations, least_start)
         if least is None:
             verdict = "solver_failed" if failures else "time_or_iteration_cap"
-        elif shown or (shown is None and self._shown_infeasible(x0, P0, forecast)):
+        elif shown:
             verdict = "infeasible"
         elif time.perf_counter() - started > s.deadline_s:
             verdict = "time_or_iteration_cap"
@@ -307,7 +311,7 @@ class ChanceConstrainedMPC:
             centre = x0[0:2][None, :] + x0[2:4][None, :] * t[:, None]
             radius = np.sqrt(2.0) * 0.5 * s.max_accel_mps2 * t**2
         inputs = _braking_inputs(model, x0, s)
-        states = model.rollout(x0, inputs, s.step_s)
+        states, _ = self._sqp.rollout(x0, inputs)
         position_cov = self._sqp.robot_covariances(states, inputs, P0)[1:, 0:2, 0:2]
         normals = face_normals(forecast.headings)  # (J, N, 2, 2)
         grown = forecast.half_extents[:, None, :] + s.robot_radius_m  # (J, 1, 2)
