@@ -16,7 +16,7 @@ from riskbound.clearance import disc_box_clearance
 from riskbound.motion.forecast import ObstacleForecast
 from riskbound.planning.mpc import ChanceConstrainedMPC
 from riskbound.planning.settings import PlannerSettings
-from test_mpc_obstacles import independent_charge, numeric_jacobians
+from test_mpc_obstacles import independent_charge, robot_position_covariances
 
 N, DT = 20, 0.1
 ALPHA = 0.05
@@ -24,17 +24,6 @@ YAW_SIGMA_RAD = 0.12
 PERSON_SIGMA_M = 0.03
 HALF_EXTENTS = (0.25, 0.2)
 DRAWS = 40_000
-
-
-def covariances_along(model, settings, P0, states, inputs):
-    """P_{k+1} = F P_k Fᵀ + G W Gᵀ along the plan, finite-difference Jacobians (the EKF prediction step)."""
-    W = np.diag([settings.robot_accel_noise**2, settings.robot_turn_noise**2])
-    P, out = P0.copy(), []
-    for x, u in zip(states[:-1], inputs):
-        F, G = numeric_jacobians(model, x, u)
-        P = F @ P @ F.T + G @ W @ G.T
-        out.append(P[0:2, 0:2])
-    return np.array(out)
 
 
 def standing_persons():
@@ -55,7 +44,7 @@ def test_charge_and_monte_carlo_along_the_returned_plan():
     assert result.success, result.status
     assert np.linalg.norm(result.states[-1, 0:2]) > 1.0  # it drives off: the case the defect was about
 
-    along_plan = covariances_along(mpc.model, settings, P0, result.states, result.inputs)
+    along_plan = robot_position_covariances(mpc.model, settings, x0, result.states, result.inputs, initial=P0)
     # The heading uncertainty has turned into sideways uncertainty along the plan.
     heading = result.states[-1, 2]
     sideways = np.array([-math.sin(heading), math.cos(heading)])

@@ -63,14 +63,14 @@ def numeric_jacobians(model, x, u, h=1e-6):
     return columns(lambda z: model.step(z, u, DT), x), columns(lambda w: model.step(x, w, DT), u)
 
 
-def robot_position_covariances(model, settings, x0, states=None, inputs=None):
-    """Robot covariance along a plan (default: the zero-input rollout), by a plain numpy loop."""
+def robot_position_covariances(model, settings, x0, states=None, inputs=None, initial=P0):
+    """Robot covariance along a plan (default: the zero-input rollout) from `initial`, by a plain numpy loop."""
     if inputs is None:
         inputs = np.zeros((N, 2))
         states = model.rollout(x0, inputs, DT)
     W = np.diag([settings.robot_accel_noise**2,
                  (settings.robot_turn_noise if model.name == "unicycle" else settings.robot_accel_noise) ** 2])
-    P, out = P0.copy(), []
+    P, out = np.array(initial, dtype=float), []
     for x, u in zip(states[:-1], inputs):
         F, G = numeric_jacobians(model, x, u)
         P = F @ P @ F.T + G @ W @ G.T
