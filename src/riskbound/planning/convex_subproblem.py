@@ -64,7 +64,7 @@ class ConvexSubproblem:
         self.settings, self.model = settings, model
         s = settings
         N, M, K = s.horizon_steps, s.max_obstacles, static_planes
-        n, m = model.state_dim, model.input_dim
+        m = model.input_dim
         self.static_planes = K
         self._unicycle = model.name == "unicycle"
         inputs, slacks = N * m, N + 1
@@ -113,7 +113,7 @@ class ConvexSubproblem:
         input_lower/upper: (N, m) input bounds of this iteration (limits ∩ trust region)
         """
         s = self.settings
-        N, M = s.horizon_steps, s.max_obstacles
+        N = s.horizon_steps
         n, m = self.model.state_dim, self.model.input_dim
         w_goal, w_terminal, w_speed, w_accel, w_turn = weights
         # State weights of x₁ … x_N (x₀ is fixed and adds a constant).

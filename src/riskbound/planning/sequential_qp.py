@@ -27,7 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from riskbound.planning.buffered_function import BufferedFunction
-from riskbound.planning.convex_subproblem import NO_BOUND, ConvexSubproblem, input_limits
+from riskbound.planning.convex_subproblem import ConvexSubproblem, input_limits
 from riskbound.planning.obstacle_constraints import build_obstacle_constraints
 from riskbound.planning.problem import plan_cost, weight_values
 from riskbound.risk.allocation import REALLOCATION_TARGET, reallocate
@@ -79,7 +79,7 @@ class Candidate:
 @dataclass
 class SearchOutcome:
     best: Candidate  # best certified candidate, or None
-    least_violating: Candidate  # the candidate with the smallest obstacle slack, or None
+    least_violating: Candidate  # the candidate that enters the ellipses least (its `violation`), or None
     iterations: int
     converged: bool
     solver_status: str
@@ -120,7 +120,7 @@ class SequentialQP:
         free_first: the first iteration leaves the people out (cold starts).
         """
         s, model = self.settings, self.model
-        N, M = s.horizon_steps, s.max_obstacles
+        N = s.horizon_steps
         weights = np.asarray(weight_values(s), dtype=float)
         inputs = np.asarray(start_inputs, dtype=float).copy()
         states, linearisation = self.rollout(x0, inputs)
@@ -140,8 +140,7 @@ class SequentialQP:
                 break
             iterations += 1
             position_cov = plan_cov[1:, 0:2, 0:2]
-            # The double integrator's covariance does not depend on the plan: its ellipses change
-            # only when the risk split does.
+            # So the double integrator's ellipses change only when the risk split does.
             if constraints is None or model.name == "unicycle":
                 constraints = build_obstacle_constraints(forecast, position_cov, x0[0:2], s, pair_risks, people_budget)
             obstacle_rows = _tangent_rows(constraints, states[1:, 0:2], x0[0:2])
@@ -182,11 +181,11 @@ class SequentialQP:
                                   float(depth.sum()) + 10.0 * static_slack)
             if certified and (best is None or candidate.cost < best.cost):
                 best = candidate
-            if least is None or _violation(candidate) < _violation(least):
+            if least is None or candidate.violation < least.violation:
                 least = candidate
             # The unicycle's rollout can leave the linearisation's reach: a step that enters the
             # ellipses deeper than its iterate did is retried with half the trust region.
-            worse = current is not None and _violation(candidate) > _violation(current) + 1e-6
+            worse = current is not None and candidate.violation > current.violation + 1e-6
             if trust is not None and worse:
                 trust = trust / 2.0
                 continue
@@ -323,10 +322,6 @@ def _quadratic(constraints, points):
     return np.einsum("jka,jkab,jkb->jk", d, constraints.shapes, d)
 
 
-def _violation(candidate):
-    return candidate.violation
-
-
 def reallocate_pairs(pair_risks, constraints, charge, states, budget):
     """Iterative allocation for a plan (states (N+1, n)) of any solve path; writes `pair_risks`."""
     _reallocate(pair_risks, constraints, charge, _quadratic(constraints, states[1:, 0:2]), budget)
@@ -343,5 +338,4 @@ def _reallocate(pair_risks, constraints, charge, quadratic, budget):
         pair_risks[int(constraints.track_ids[slot])] = updated[slot]
 
 
-__all__ = ["NO_BOUND", "Candidate", "PlanCharge", "SearchOutcome", "SequentialQP", "charge_plan",
-           "reallocate_pairs"]
+__all__ = ["Candidate", "PlanCharge", "SearchOutcome", "SequentialQP", "charge_plan", "reallocate_pairs"]
