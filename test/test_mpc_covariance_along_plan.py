@@ -50,7 +50,7 @@ def test_charge_and_monte_carlo_along_the_returned_plan():
     sideways = np.array([-math.sin(heading), math.cos(heading)])
     assert math.sqrt(sideways @ along_plan[-1] @ sideways) > 0.1
     charge = independent_charge(result, forecast, settings, along_plan)
-    assert abs(result.risk_charged - charge) <= 1e-5 * charge + 1e-12
+    assert abs(result.risk_charged - charge) <= 1e-4 * charge + 1e-10
     assert charge <= ALPHA
 
     # Fly the plan open loop: start drawn from P0, white noise on the inputs as the planner assumes,

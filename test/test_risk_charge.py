@@ -4,7 +4,7 @@ import math
 
 import numpy as np
 import pytest
-from scipy.stats import chi2, norm
+from scipy.stats import chi2, multivariate_normal, norm
 
 from riskbound.risk.charge import box_risk, distant_risk, halfplane_risk
 
@@ -18,18 +18,21 @@ def random_pair(rng):
     return d, sigma, heading, half
 
 
-def test_box_risk_is_the_smaller_exact_slab_probability():
-    # P(−h < n·d < h) = Φ((h − n·d̂)/σ) − Φ((−h − n·d̂)/σ), σ² = nᵀΣn: the normal distribution of a
-    # linear form of a Gaussian vector (common practice, no source), evaluated with scipy.stats.norm.
+def test_box_risk_is_the_rectangle_probability_and_below_each_slab():
+    # P(−h₁ < u₁ < h₁, −h₂ < u₂ < h₂) for the box-frame Gaussian u, against scipy.stats.multivariate_normal
+    # (its CDF over the rectangle); and below P(−hᵢ < uᵢ < hᵢ) = Φ((hᵢ − μᵢ)/σᵢ) − Φ((−hᵢ − μᵢ)/σᵢ)
+    # for each slab alone (a linear form of a Gaussian vector is Gaussian; common practice, no source).
     rng = np.random.default_rng(3)
     for _ in range(50):
         d, sigma, heading, half = random_pair(rng)
-        normals = [np.array([math.cos(heading), math.sin(heading)]), np.array([-math.sin(heading), math.cos(heading)])]
-        slabs = []
-        for n, h in zip(normals, half):
-            s = math.sqrt(n @ sigma @ n)
-            slabs.append(norm.cdf((h - n @ d) / s) - norm.cdf((-h - n @ d) / s))
-        assert box_risk(d, sigma, heading, half) == pytest.approx(min(slabs), rel=1e-10, abs=1e-15)
+        normals = np.array([[math.cos(heading), math.sin(heading)], [-math.sin(heading), math.cos(heading)]])
+        mean, frame = normals @ d, normals @ sigma @ normals.T
+        expected = multivariate_normal(mean, frame).cdf(half, lower_limit=-half)
+        got = box_risk(d, sigma, heading, half)
+        assert got == pytest.approx(expected, rel=1e-5, abs=1e-9)
+        for i in range(2):
+            s = math.sqrt(frame[i, i])
+            assert got <= norm.cdf((half[i] - mean[i]) / s) - norm.cdf((-half[i] - mean[i]) / s) + 1e-15
 
 
 def test_box_risk_bounds_the_monte_carlo_frequency_of_being_inside_the_box():

@@ -213,19 +213,31 @@ class ChanceConstrainedMPC:
         else:
             inputs = np.zeros((N, model.input_dim))
             states, warm, start = model.rollout(x0, inputs, s.step_s), None, "rollout"
-        iterations, outcome, constraints = 0, None, None
-        # Build the ellipses along the guess's covariance, then along the returned plan's until the
-        # plan's own covariance is no larger than the one its ellipses were built with (twice at most).
-        for _ in range(2):
+        iterations, risks = 0, self.pair_risks
+        # Build the ellipses along the guess's covariance, then again along the returned plan's while
+        # the plan's own covariance is larger than the one its ellipses were built with; a plan over
+        # the bound is solved again after a reallocation step, and at last with the uniform split.
+        for attempt in range(4):
             position_cov = self._sqp.robot_covariances(states, inputs, P0)[1:, 0:2, 0:2]
-            constraints = build_obstacle_constraints(forecast, position_cov, x0[0:2], s, self.pair_risks)
+            constraints = build_obstacle_constraints(forecast, position_cov, x0[0:2], s, risks)
             same = constraints.track_ids == self._previous[3] if warm is not None else None
             outcome = self._ipopt.solve(x0, reference, constraints, states, inputs, warm, same)
             iterations += outcome.iterations
             if outcome.status not in USABLE_STATUSES:
                 break
             plan_cov = self._sqp.robot_covariances(outcome.states, outcome.inputs, P0)[1:, 0:2, 0:2]
-            if np.all(np.linalg.eigvalsh(plan_cov - position_cov) <= 1e-12):
+            charge = charge_plan(outcome.states, plan_cov, forecast, constraints, None, s)
+            certified = (charge.largest_pair if s.risk_allocation == "per_constraint" else charge.total) \
+                <= s.risk_level
+            grown = np.any(np.linalg.eigvalsh(plan_cov - position_cov) > 1e-12)
+            if certified and not grown:
+                break
+            if not certified and risks:
+                if attempt < 2 and s.risk_allocation == "joint" and constraints.considered:
+                    reallocate_pairs(risks, constraints, charge, outcome.states, s.risk_level)
+                else:
+                    risks = {}
+            elif not grown:
                 break
             states, inputs, warm = outcome.states, outcome.inputs, None
         status = outcome.status
