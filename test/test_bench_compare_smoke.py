@@ -9,15 +9,15 @@ import subprocess
 import sys
 
 SUITE_KEYS = ("solve_ms_median", "solve_ms_p90", "speedup_vs_mixed_integer", "cost_gap_mean", "cost_gap_median",
-              "cost_gap_p90", "success_rate", "collision_probability_mean", "collision_probability_max", "stuck")
+              "cost_gap_p90", "success_rate", "collision_probability_mean", "collision_probability_max",
+              "plans_significantly_above_alpha", "stuck")
 CROWD_KEYS = ("episodes", "success_rate", "collision_rate", "collisions_while_stopped", "stuck", "solve_ms_median",
               "solve_ms_p90", "failed_solve_fraction", "collision_probability_mean", "collision_probability_max",
-              "collision_probability_max_considered", "plans_above_alpha")
+              "collision_probability_max_considered", "plans_above_alpha", "plans_significantly_above_alpha")
 PRUNING_KEYS = ("walkers_low", "walkers_high", "solve_ms_median_low", "solve_ms_median_high", "ratio",
                 "solve_ms_median_replay_low", "solve_ms_median_replay_high_far", "ratio_far")
-TARGETS = ("speedup_vs_mixed_integer", "cost_gap_mean", "collision_probability_max",
-           "collision_probability_max_considered", "crowd_success_vs_linearised", "pruning_ratio",
-           "pruning_ratio_far_walkers")
+TARGETS = ("speedup_vs_mixed_integer", "cost_gap_mean", "plans_significantly_above_alpha",
+           "crowd_success_vs_linearised", "pruning_ratio", "pruning_ratio_far_walkers")
 
 
 def _finite(value):

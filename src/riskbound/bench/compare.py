@@ -111,7 +111,8 @@ def run(args):
     log(f"suite (b): exhibition hall with {sizes} walkers, {seeds} seeds, methods {', '.join(CROWD_METHODS)}")
     crowd_results = run_crowds(settings, sizes, seeds, args.sigma_multiple, mc_samples_crowd,
                                scene_options, log)
-    crowd = {"sizes": list(sizes), "seeds": seeds, "methods": summarise_crowds(crowd_results, settings.risk_level)}
+    crowd = {"sizes": list(sizes), "seeds": seeds,
+             "methods": summarise_crowds(crowd_results, settings.risk_level, mc_samples_crowd)}
     low, high = args.pruning_walkers
     pruning = run_pruning(settings, low, high, pruning_seeds, pruning_options, log)
     report = {

@@ -48,6 +48,14 @@ def plan_collision_probability(states, inputs, P0, forecast, settings, model, rn
     return float(np.mean(inside.any(axis=(1, 2))))
 
 
+def significantly_above(probabilities, samples, alpha):
+    """How many plans' collision frequencies (each from `samples` draws) are significantly above α:
+    the one-sided 95 % Clopper–Pearson lower bound (riskbound.bench.risk.lower_confidence) above it.
+    Point estimates of plans planned close to α exceed it by sampling noise alone."""
+    from riskbound.bench.risk import lower_confidence
+    return int(sum(lower_confidence(int(round(p * samples)), samples) > alpha for p in probabilities))
+
+
 def considered_only(forecast, constraints):
     """The part of `forecast` a planner constrained this cycle (its obstacle slots in use)."""
     ids = set(int(i) for i in constraints.track_ids[: constraints.considered])

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from riskbound.bench.compare_collision import considered_only, plan_collision_probability
+from riskbound.bench.compare_collision import considered_only, plan_collision_probability, significantly_above
 from riskbound.bench.compare_methods import CROWD_METHODS, finite_percentile, make_planner
 from riskbound.clearance import disc_box_clearance
 from riskbound.motion.forecast import ObstacleForecast
@@ -203,7 +203,7 @@ def run_crowds(settings, sizes, seeds, sigma_multiple, mc_samples, scene_options
     return results
 
 
-def summarise_crowds(results, alpha):
+def summarise_crowds(results, alpha, samples):
     summary = {}
     for method, by_size in results.items():
         summary[method] = {}
@@ -227,6 +227,7 @@ def summarise_crowds(results, alpha):
                 "collision_probability_max": float(np.max(probability)) if len(probability) else 0.0,
                 "collision_probability_max_considered": float(np.max(considered)) if len(considered) else 0.0,
                 "plans_above_alpha": int(np.sum(probability > alpha)),
+                "plans_significantly_above_alpha": significantly_above(probability, samples, alpha),
             }
     return summary
 

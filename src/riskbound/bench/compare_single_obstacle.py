@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from riskbound.bench.compare_collision import plan_collision_probability
+from riskbound.bench.compare_collision import plan_collision_probability, significantly_above
 from riskbound.bench.compare_methods import METHODS, finite_percentile, make_planner
 from riskbound.motion.forecast import ObstacleForecast
 from riskbound.planning.baselines.common import goal_reference, plan_cost
@@ -105,10 +105,10 @@ def run_suite(settings, instances, seed, sigma_multiple, passes, mc_samples, tim
             records[method].append(record)
             line.append(f"{method} {result.status} {result.solve_ms:.0f} ms")
         log(" | ".join(line))
-    return summarise_suite(records, suite_settings)
+    return summarise_suite(records, suite_settings, mc_samples)
 
 
-def summarise_suite(records, settings):
+def summarise_suite(records, settings, samples):
     reference = records["mixed_integer"]
     ref_ms = np.median([r["solve_ms"] for r in reference])
     # Instances where the obstacle shapes the optimum: the mixed-integer plan touches its box.
@@ -134,6 +134,7 @@ def summarise_suite(records, settings):
             "success_rate": float(np.mean([r["success"] for r in rows])),
             "collision_probability_mean": float(np.mean(probability)) if probability else float("nan"),
             "collision_probability_max": float(np.max(probability)) if probability else float("nan"),
+            "plans_significantly_above_alpha": significantly_above(probability, samples, settings.risk_level),
             "stuck": int(stuck),
         }
     return {"instances": len(reference), "obstacle_active_instances": int(sum(active)), "methods": methods,
