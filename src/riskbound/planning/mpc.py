@@ -173,8 +173,11 @@ class ChanceConstrainedMPC:
             # A warm start continues the split carried from the last cycle: one pass. A cold start
             # (or the retry) begins from the uniform split and may take several.
             passes = 1 if start == "shifted_plan" else s.allocation_passes
+            # Retries get half the iterations each: they bound the cycle's worst case, and a start
+            # that leads anywhere has a plan within the bound after a few.
             outcome = self._sqp.search(x0, P0, reference, forecast, inputs, risks, s.risk_level, static_world,
-                                       started, s.deadline_s, passes, free_first=start == "rollout")
+                                       started, s.deadline_s, passes, free_first=start == "rollout",
+                                       iterations_cap=None if attempt == 0 else max(s.qp_iterations // 2, 1))
             iterations += outcome.iterations
             failures += outcome.qp_failures
             status = outcome.solver_status

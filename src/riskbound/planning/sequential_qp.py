@@ -112,12 +112,13 @@ class SequentialQP:
         return out["o0"].reshape(n, n * (s.horizon_steps + 1)).T.reshape(s.horizon_steps + 1, n, n).copy()
 
     def search(self, x0, P0, reference, forecast, start_inputs, pair_risks, budget, static_world, started,
-               deadline_s, allocation_passes, free_first=False):
+               deadline_s, allocation_passes, free_first=False, iterations_cap=None):
         """Iterate from `start_inputs`; `pair_risks` ({track id: (N,) risk}) is updated in place (joint).
 
         allocation_passes: reallocation steps that may be followed by another pass (the last step's
         split is left in `pair_risks` for the next cycle).
         free_first: the first iteration leaves the people out (cold starts).
+        iterations_cap: convex subproblems at most (default `qp_iterations`).
         """
         s, model = self.settings, self.model
         N = s.horizon_steps
@@ -135,7 +136,7 @@ class SequentialQP:
         # The double integrator's covariance does not depend on the plan: one propagation serves
         # every iterate. The unicycle's is propagated along each iterate.
         plan_cov = self.robot_covariances(states, inputs, P0)
-        for _ in range(s.qp_iterations):
+        for _ in range(s.qp_iterations if iterations_cap is None else iterations_cap):
             if time.perf_counter() - started > deadline_s:
                 break
             iterations += 1
