@@ -13,7 +13,12 @@ stack believed:
 - the recorded bag is readable and holds the run's topics;
 - zero ground-truth collisions: at every replayed truth frame the robot's disc (the planner's
   robot_radius_m, position interpolated from odometry) and every walker's box (the tracker's
-  footprint, oriented with the walker's heading; riskbound.clearance) do not overlap.
+  footprint, oriented with the walker's heading; riskbound.clearance) do not overlap;
+- zero static contacts and no time outside the bounds: the robot's disc never overlaps the walls
+  and planters of the bag's /map, its centre never leaves the bounds of the bag's metadata
+  (riskbound.crowd.static_map);
+- no stop longer than 3 s while the goal is open (speed below 0.05 m/s;
+  riskbound.logs.contact_geometry), the issue's criterion for the crowd suite.
 
 Parameters: the shipped config/drone.yaml (20 steps, joint allocation, α = 0.05; its
 infeasible_response least_violation moves the robot out of the way of walkers who cannot react to
@@ -31,6 +36,8 @@ from riskbound.logs import bag_io
 REPLAY_SPEED = 1.0
 TIME_LIMIT_S = 160.0
 CYCLES_REPORTED_FRACTION = 0.95
+# Longest stand while the goal is open: the crowd suite's criterion (issue 12), our own choice, no source.
+MAX_STOP_S = 3.0
 RECORDED_TOPICS = {"/odom", "/cmd_vel", "/cmd_vel_plan", "/planner_status", "/obstacle_forecast", "/detections",
                    "/crowd_truth", "/clock", "/goal", "/plan", "/diagnostics"}
 
@@ -76,3 +83,16 @@ def test_recorded_bag_is_readable(run):
     assert RECORDED_TOPICS <= set(topics), sorted(topics)
     counted = sum(1 for _ in bag_io.read_messages(recorded, ["/odom", "/planner_status"]))
     assert counted == topics["/odom"][1] + topics["/planner_status"][1]
+
+
+def test_no_contact_with_walls_or_planters_and_never_outside_the_bounds(run):
+    s = run.summary
+    assert s.static_map_checked, "the committed bag carries its walls on /map and bounds in its metadata"
+    assert s.static_contacts == 0, (run.out_dir / "summary.txt").read_text()
+    assert s.time_outside_bounds_s == 0.0
+    assert s.min_static_clearance_m > 0.0
+
+
+def test_no_long_stop_while_the_goal_is_open(run):
+    s = run.summary
+    assert s.longest_stop_s <= MAX_STOP_S, (run.out_dir / "summary.txt").read_text()

@@ -15,6 +15,7 @@ BENCHMARKS = {
     "faults": "riskbound.ros.fault_benchmark",
     "tracker": "riskbound.bench.tracker",
     "crowdloop": "riskbound.bench.crowd_loop",
+    "crowdsuite": "riskbound.bench.crowd_suite",
 }
 
 
